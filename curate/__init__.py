@@ -1,0 +1,49 @@
+"""curate: assemble dermatology image datasets that do not leak.
+
+The public API is re-exported here lazily, so ``import curate`` stays cheap and
+imports no optional dependency (ipywidgets, click, dask).
+
+curate curates data; it does not diagnose.
+"""
+
+from __future__ import annotations
+
+import importlib
+from importlib.metadata import PackageNotFoundError, version
+
+try:
+    __version__ = version("curate")
+except PackageNotFoundError:  # pragma: no cover - running from a source tree
+    __version__ = "0+unknown"
+
+# public name -> module that defines it; one block per concern
+_EXPORTS: dict[str, str] = {
+    # foundation
+    "Workspace": "curate.store",
+    "Finding": "curate.report",
+    "Report": "curate.report",
+    "IngestIssue": "curate.report",
+    "LeakReason": "curate.report",
+    "CurateError": "curate.errors",
+    "CatalogError": "curate.errors",
+    "ManifestError": "curate.errors",
+    "LeakageError": "curate.errors",
+    "TaxonomyError": "curate.errors",
+    "WorkspaceError": "curate.errors",
+}
+
+__all__ = sorted(_EXPORTS) + ["__version__"]
+
+
+def __getattr__(name: str):
+    try:
+        module = _EXPORTS[name]
+    except KeyError:
+        raise AttributeError(f"module 'curate' has no attribute {name!r}") from None
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return __all__
