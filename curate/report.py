@@ -42,6 +42,9 @@ class IngestIssue(Reason):
     UNREADABLE_METADATA = "unreadable_metadata"
     METADATA_WITHOUT_FILE = "metadata_without_file"
     CONFLICTING_METADATA = "conflicting_metadata"
+    MALFORMED_ROW = "malformed_row"
+    BAD_DATE = "bad_date"
+    READ_ERROR = "read_error"
 
 
 class LeakReason(Reason):
