@@ -107,16 +107,7 @@ def record_decision(
 
     The pair is stored with ``image_a < image_b`` whichever order it is given in.
     """
-    check_decision(decision)
-    a, b = _ordered_pair(image_a, image_b)
-    reviewer = _check_reviewer(reviewer)
-    with workspace.transaction() as con:
-        cur = con.execute(
-            "INSERT INTO decisions(image_a, image_b, decision, reviewer, decided_at, undone) "
-            "VALUES (?, ?, ?, ?, ?, 0)",
-            (a, b, decision, reviewer, utc_now()),
-        )
-        return int(cur.lastrowid)
+    return record_decisions(workspace, [(image_a, image_b)], decision, reviewer=reviewer)[0]
 
 
 def record_decisions(
