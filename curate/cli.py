@@ -85,3 +85,55 @@ def init_command(workspace: str) -> int:
     ws = Workspace.create(workspace)
     click.echo(f"workspace ready: {ws.path} (schema version {ws.schema_version()})")
     return EXIT_OK
+
+
+# --- ingest ------------------------------------------------------------------------
+
+
+@command(main, "scan", "Take a folder of images (and its metadata CSV) into the catalog.")
+@click.argument("workspace", type=click.Path(file_okay=False))
+@click.argument("folder", required=False, type=click.Path())
+@click.option("--source", help="Name of the source (clinic, archive); default: the folder's or CSV's name.")
+@click.option("--metadata", type=click.Path(), help="CSV with one row per image, joined by path.")
+@click.option(
+    "--columns",
+    help="Which CSV column holds each field: path=...,patient=...,lesion=...,label=...,"
+    "modality=...,body_site=...,capture_date=... (default: columns named like the fields).",
+)
+@click.option("--root", type=click.Path(), help="Without FOLDER: where the CSV's relative paths start "
+              "(default: the CSV's folder); every listed file must lie under it.")
+@click.option("-q", "--quiet", is_flag=True, help="No progress bars.")
+def scan_command(workspace, folder, source, metadata, columns, root, quiet) -> int:
+    """Scan FOLDER (JPEG, PNG, TIFF, BMP, WebP) into WORKSPACE, or only the files --metadata lists.
+
+    Records per file its path, size, modification time, SHA-256, pixel size,
+    mode and format, plus the metadata joined by path. A re-scan reuses what it
+    knows of unchanged files (same path, size and modification time) and marks
+    files that are gone. Every bad file or CSV row is recorded in the problems
+    table and counted in the one-line summary; exact duplicates (same SHA-256)
+    are counted across the workspace.
+
+    Exit code 1 means problems were recorded; 2 means the input cannot be used
+    (missing folder, metadata CSV unreadable or missing a required column).
+    """
+    from curate.ingest import scan_folder, scan_metadata
+    from curate.metadata import parse_columns
+    from curate.store import Workspace
+
+    mapping = parse_columns(columns)
+    if folder is None and metadata is None:
+        raise click.UsageError("give a FOLDER to walk, or --metadata FILE.csv listing the files")
+    if folder is not None and root is not None:
+        raise click.UsageError("--root is for a metadata-only scan; with FOLDER, paths start at FOLDER")
+    ws = Workspace.create(workspace)
+    if folder is not None:
+        result = scan_folder(ws, folder, source=source, metadata=metadata, columns=mapping, progress=not quiet)
+    else:
+        from pathlib import Path
+
+        result = scan_metadata(
+            ws, metadata, source=source or Path(metadata).stem, columns=mapping, root=root,
+            progress=not quiet,
+        )
+    click.echo(result.summary())
+    return EXIT_FINDINGS if not result.report.ok else EXIT_OK

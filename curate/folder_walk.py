@@ -55,7 +55,7 @@ def walk_images(root, *, extensions=IMAGE_EXTENSIONS) -> Iterator[FileEntry | Fi
     >>> os.symlink(d, os.path.join(d, "again"))
     >>> [(type(x).__name__, os.path.basename(x.path if hasattr(x, "path") else x.file))
     ...  for x in walk_images(d)]
-    [('FileEntry', 'a.png'), ('FileEntry', 'b.JPG'), ('Finding', 'again')]
+    [('FileEntry', 'a.png'), ('Finding', 'again'), ('FileEntry', 'b.JPG')]
     """
     root = os.path.abspath(os.fspath(root))
     top = os.stat(root)

@@ -43,6 +43,8 @@ CREATE TABLE images (
     mode          TEXT,                   -- Pillow mode, e.g. RGB
     format        TEXT,                   -- Pillow format, e.g. JPEG
     decodable     INTEGER NOT NULL DEFAULT 0,
+    scan_issue    TEXT,                   -- IngestIssue code from the file's last reading, NULL if fine
+    scan_message  TEXT,
     patient_id    TEXT,
     lesion_id     TEXT,
     label         TEXT,                   -- raw diagnosis text as the source gave it

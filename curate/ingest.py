@@ -1,0 +1,443 @@
+"""Catalog ingest: take a folder of images (and its metadata CSV) into a workspace.
+
+:func:`scan_folder` walks a folder for JPEG, PNG, TIFF, BMP and WebP files;
+:func:`scan_metadata` takes the files a metadata CSV lists, without a walk.
+Both record per file: path, size, modification time, SHA-256, pixel width and
+height, Pillow mode and format, whether it decodes, and the metadata joined
+by path (patient, lesion, raw diagnosis label, modality, body site, capture date).
+
+A *source* (a clinic, an archive) is the unit of a scan. Scanning a source
+again:
+
+- reuses the stored digest and image facts of every file whose path, size
+  and ``mtime_ns`` are unchanged, so an unchanged tree costs one ``stat`` per
+  file and no file is opened; a changed file is read again;
+- marks the source's files that are gone ``present = 0`` (rows are never deleted);
+- replaces the source's previous ``scan`` rows in the ``problems`` table, so
+  that table says what is wrong now;
+- with metadata given, sets every file's metadata from it (a file the CSV no
+  longer lists gets empty fields); without metadata, keeps what is stored.
+
+Bad input never stops a scan and never drops a good row: every bad file or CSV
+row becomes a finding (an :class:`~curate.report.IngestIssue` code) in the
+result's report and in ``problems``. Only a metadata file that cannot be used
+at all (unreadable, or missing a required or mapped column) raises
+:class:`~curate.errors.CatalogError`; that problem is recorded and nothing
+else of the source changes.
+
+Caution: a file rewritten within the file system's time resolution with the
+same size keeps its old digest until its size or time changes (common
+practice for change detection by size and time).
+
+curate curates data; it does not diagnose. Patient data handling follows local
+law and institutional rules.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pandas as pd
+
+from curate import file_probe
+from curate.errors import CatalogError
+from curate.folder_walk import FileEntry, stat_entry, walk_images
+from curate.metadata import FIELD_COLUMNS, MetadataRow, join_paths, read_metadata
+from curate.report import Finding, IngestIssue, Report
+
+CHECK = "scan"
+BATCH_SIZE = 2000
+META_COLUMNS = tuple(list(FIELD_COLUMNS.values())[1:])  # patient_id ... capture_date
+FACT_COLUMNS = ("sha256", "width", "height", "mode", "format", "decodable", "scan_issue", "scan_message")
+_ROW_COLUMNS = ("path", "root", "source", "size", "mtime_ns") + FACT_COLUMNS
+
+
+@dataclass
+class ScanResult:
+    """What one scan did.
+
+    Attributes
+    ----------
+    source, root : str
+    files_seen : int
+        Files found (walked, or listed and present).
+    new : int
+        Files read for the first time.
+    redigested : int
+        Known files whose size or time changed, read again.
+    reused : int
+        Unchanged files whose stored facts were reused without opening them.
+    gone : int
+        Files of this source known before and not found now (marked ``present = 0``).
+    report : Report
+        Every problem found; also stored in the ``problems`` table.
+    exact_duplicate_groups, exact_duplicate_files : int
+        Across the whole workspace after the scan: digests held by two or more
+        present non-empty files, and how many files hold them.
+    seconds : float
+    """
+
+    source: str
+    root: str
+    files_seen: int = 0
+    new: int = 0
+    redigested: int = 0
+    reused: int = 0
+    gone: int = 0
+    report: Report = field(default_factory=Report)
+    exact_duplicate_groups: int = 0
+    exact_duplicate_files: int = 0
+    seconds: float = 0.0
+
+    def summary(self) -> str:
+        """One line: counts, problems by kind, exact duplicates."""
+        problems = (
+            "no problems"
+            if self.report.ok
+            else f"{len(self.report)} problems ("
+            + ", ".join(f"{n} {k}" for k, n in self.report.counts().items())
+            + ")"
+        )
+        return (
+            f"{self.source}: {self.files_seen} files ({self.new} new, {self.redigested} changed, "
+            f"{self.reused} unchanged, {self.gone} gone); {problems}; "
+            f"{self.exact_duplicate_files} files share a SHA-256 with another "
+            f"({self.exact_duplicate_groups} groups)"
+        )
+
+
+def scan_folder(ws, root, *, source=None, metadata=None, columns=None, progress=True) -> ScanResult:
+    """Walk ``root`` for image files and take them into the workspace catalog.
+
+    Parameters
+    ----------
+    ws : Workspace
+    root : str or path
+        The folder to walk (symlinked folders are followed, loops are not).
+    source : str, optional
+        Name of the source; defaults to the folder's name.
+    metadata : str or path, optional
+        A CSV with one row per image; its paths are relative to ``root`` (or absolute).
+    columns : dict, optional
+        Our field -> CSV column, see :func:`curate.metadata.parse_columns`.
+    progress : bool
+        Show progress bars (tqdm, on stderr).
+
+    Returns
+    -------
+    ScanResult
+
+    Raises
+    ------
+    FileNotFoundError, NotADirectoryError
+        ``root`` is missing or not a folder.
+    CatalogError
+        The metadata file cannot be used at all (the problem is recorded first).
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> from PIL import Image
+    >>> from curate.store import Workspace
+    >>> d = tempfile.mkdtemp()
+    >>> Image.new("RGB", (8, 6), "tan").save(os.path.join(d, "a.png"))
+    >>> Image.new("RGB", (8, 6), "tan").save(os.path.join(d, "copy.png"))
+    >>> open(os.path.join(d, "empty.jpg"), "wb").close()
+    >>> ws = Workspace.create(tempfile.mkdtemp())
+    >>> r = scan_folder(ws, d, source="clinic", progress=False)
+    >>> r.files_seen, r.new, r.report.counts(), r.exact_duplicate_files
+    (3, 3, {'zero_byte': 1}, 2)
+    >>> scan_folder(ws, d, source="clinic", progress=False).reused
+    3
+    """
+    root = os.path.abspath(os.fspath(root))
+    if not os.path.isdir(root):
+        raise (NotADirectoryError if os.path.exists(root) else FileNotFoundError)(
+            f"{root} is not a folder" if os.path.exists(root) else f"{root} does not exist"
+        )
+    source = source or os.path.basename(root.rstrip(os.sep)) or root
+    started = time.perf_counter()
+    meta_rows, findings = (None, [])
+    if metadata is not None:
+        meta_rows, findings = _load_metadata(ws, metadata, columns, root, source)
+    entries = []
+    for item in _progress(walk_images(root), progress, desc=f"listing {source}", unit=" files"):
+        (entries if isinstance(item, FileEntry) else findings).append(item)
+    if meta_rows is not None:
+        walked = {e.path for e in entries}
+        findings.extend(_unmatched_rows(meta_rows, walked, str(metadata)))
+    return _scan(ws, source, root, entries, meta_rows, findings, progress, started)
+
+
+def scan_metadata(ws, csv_path, *, source, columns=None, root=None, progress=True) -> ScanResult:
+    """Take the files a metadata CSV lists into the catalog, without walking a folder.
+
+    Parameters
+    ----------
+    ws : Workspace
+    csv_path : str or path
+        The metadata CSV; its ``path`` column names the files.
+    source : str
+        Name of the source.
+    columns : dict, optional
+        Our field -> CSV column, see :func:`curate.metadata.parse_columns`.
+    root : str or path, optional
+        Folder that relative paths start from, and that every path must lie
+        under; defaults to the CSV's folder.
+    progress : bool
+
+    Returns
+    -------
+    ScanResult
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> from PIL import Image
+    >>> from curate.store import Workspace
+    >>> d = tempfile.mkdtemp()
+    >>> Image.new("RGB", (8, 6), "tan").save(os.path.join(d, "a.png"))
+    >>> with open(os.path.join(d, "meta.csv"), "w") as f:
+    ...     _ = f.write("file,dx\\na.png,naevus\\nmissing.png,wart\\n")
+    >>> ws = Workspace.create(tempfile.mkdtemp())
+    >>> r = scan_metadata(ws, os.path.join(d, "meta.csv"), source="archive",
+    ...                   columns={"path": "file", "label": "dx"}, progress=False)
+    >>> r.files_seen, r.report.counts(), list(ws.catalog()["label"])
+    (1, {'path_not_found': 1}, ['naevus'])
+    """
+    if not source:
+        raise ValueError("source must be a non-empty name")
+    csv_path = os.path.abspath(os.fspath(csv_path))
+    root = os.path.abspath(os.fspath(root)) if root is not None else os.path.dirname(csv_path)
+    started = time.perf_counter()
+    meta_rows, findings = _load_metadata(ws, csv_path, columns, root, source)
+    entries = []
+    for path, row in meta_rows.items():
+        item = stat_entry(path)
+        if isinstance(item, FileEntry):
+            entries.append(item)
+        else:
+            findings.append(_at_row(item, csv_path, row))
+    return _scan(ws, source, root, entries, meta_rows, findings, progress, started)
+
+
+def exact_duplicates(catalog) -> pd.DataFrame:
+    """Files whose SHA-256 another present, non-empty file shares.
+
+    Parameters
+    ----------
+    catalog : DataFrame or Workspace
+        A catalog frame (columns ``image_id``, ``path``, ``sha256``, ``size``,
+        optionally ``source`` and ``present``) or a workspace.
+
+    Returns
+    -------
+    DataFrame
+        Columns ``sha256``, ``copies`` (files in the group), ``image_id``,
+        ``path``, ``source``; sorted by digest then ``image_id``.
+
+    Examples
+    --------
+    >>> cat = pd.DataFrame({"image_id": [1, 2, 3, 4], "path": list("abcd"),
+    ...                     "sha256": ["x", "y", "x", None], "size": [5, 5, 5, 0]})
+    >>> exact_duplicates(cat)[["sha256", "copies", "image_id"]].values.tolist()
+    [['x', 2, 1], ['x', 2, 3]]
+    """
+    if not isinstance(catalog, pd.DataFrame):
+        catalog = catalog.catalog()
+    cat = catalog
+    if "present" in cat:
+        cat = cat[cat["present"] == 1]
+    cat = cat[cat["sha256"].notna() & (cat["size"] > 0)]
+    copies = cat.groupby("sha256")["image_id"].transform("size")
+    out = cat.assign(copies=copies)[copies > 1]
+    if "source" not in out:
+        out = out.assign(source=None)
+    out = out[["sha256", "copies", "image_id", "path", "source"]]
+    return out.sort_values(["sha256", "image_id"]).reset_index(drop=True)
+
+
+# --- the shared core ---------------------------------------------------------------
+
+
+def _scan(ws, source, root, entries, meta_rows, findings, progress, started) -> ScanResult:
+    from curate.store import record_problems, utc_now
+
+    result = ScanResult(source=source, root=root, files_seen=len(entries))
+    now = utc_now()
+    known = _known_rows(ws)
+    to_read, changed = [], []
+    for entry in entries:
+        old = known.get(entry.path)
+        if old is not None and old["sha256"] is not None and (old["size"], old["mtime_ns"]) == (
+            entry.size,
+            entry.mtime_ns,
+        ):
+            continue
+        to_read.append(entry)
+        if old is not None:
+            changed.append(entry.path)
+    result.redigested, result.new = len(changed), len(to_read) - len(changed)
+    result.reused = len(entries) - len(to_read)
+
+    read = {}
+    batch = []
+    for entry in _progress(to_read, progress, desc=f"reading {source}", unit=" files"):
+        facts = file_probe.probe_file(entry.path, entry.size)
+        read[entry.path] = facts
+        batch.append(_row(entry, facts, root, source, meta_rows))
+        if len(batch) >= BATCH_SIZE:
+            _write_rows(ws, batch, meta_rows is not None, now)
+            batch = []
+    _write_rows(ws, batch, meta_rows is not None, now)
+
+    updates = []
+    for entry in entries:
+        if entry.path in read:
+            continue
+        old = known[entry.path]
+        row = _row(entry, old, root, source, meta_rows)
+        if any(old[c] != v for c, v in zip(_ROW_COLUMNS, row)) or not old["present"] or (
+            meta_rows is not None and _meta_values(meta_rows, entry.path) != tuple(old[c] for c in META_COLUMNS)
+        ):
+            updates.append(row)
+
+    for entry in entries:
+        facts = read.get(entry.path)
+        issue, message = (
+            (facts.issue, facts.message) if facts is not None
+            else (known[entry.path]["scan_issue"], known[entry.path]["scan_message"])
+        )
+        if issue:
+            findings.append(Finding(CHECK, IngestIssue(issue), message, file=entry.path))
+
+    seen = {e.path for e in entries}
+    gone = [
+        (old["image_id"],)
+        for path, old in known.items()
+        if old["source"] == source and old["present"] and path not in seen
+    ]
+    result.gone = len(gone)
+    with ws.transaction() as con:
+        _upsert(con, updates, meta_rows is not None, now)
+        con.executemany("UPDATE images SET present = 0 WHERE image_id = ?", gone)
+        con.execute("UPDATE images SET last_seen = ? WHERE source = ? AND present = 1", (now, source))
+        con.execute("DELETE FROM problems WHERE step = ? AND source = ?", (CHECK, source))
+        record_problems(con, CHECK, findings, source=source)
+        groups, files = con.execute(
+            "SELECT COUNT(*), COALESCE(SUM(n), 0) FROM (SELECT COUNT(*) AS n FROM images "
+            "WHERE present = 1 AND size > 0 AND sha256 IS NOT NULL GROUP BY sha256 HAVING n > 1)"
+        ).fetchone()
+    result.report = Report(list(findings))
+    result.exact_duplicate_groups, result.exact_duplicate_files = groups, files
+    result.seconds = time.perf_counter() - started
+    return result
+
+
+def _load_metadata(ws, csv_path, columns, root, source):
+    """Read and join a metadata CSV; on unusable input record the problem and re-raise."""
+    from curate.store import record_problems
+
+    csv_path = os.path.abspath(os.fspath(csv_path))
+    try:
+        try:
+            data = Path(csv_path).read_bytes()
+        except OSError as exc:
+            f = Finding(CHECK, IngestIssue.UNREADABLE_METADATA, f"cannot read: {exc.strerror or exc}", file=csv_path)
+            raise CatalogError(f"{csv_path}: cannot read: {exc.strerror or exc}", findings=(tuple(f.as_dict().values()),))
+        table = read_metadata(data, file=csv_path, columns=columns)
+    except CatalogError as exc:
+        with ws.transaction() as con:
+            record_problems(con, CHECK, [Finding(*row) for row in exc.findings], source=source)
+        raise
+    rows, findings = join_paths(table, root)
+    return rows, table.findings + findings
+
+
+def _unmatched_rows(meta_rows: dict[str, MetadataRow], walked: set, csv_path: str) -> list[Finding]:
+    """Findings for CSV rows that name no walked image file."""
+    out = []
+    for path, row in meta_rows.items():
+        if path in walked:
+            continue
+        item = stat_entry(path)
+        if isinstance(item, FileEntry):
+            item = Finding(
+                CHECK,
+                IngestIssue.METADATA_WITHOUT_FILE,
+                "the file exists but the walk did not take it (not an image name, or under a "
+                "folder reached twice)",
+                file=path,
+            )
+        out.append(_at_row(item, csv_path, row))
+    return out
+
+
+def _at_row(f: Finding, csv_path: str, row: MetadataRow) -> Finding:
+    """Re-address a file finding to the CSV row that named the file."""
+    return Finding(f.check, f.reason, f"{row.path!r}: {f.message}", file=csv_path, row=row.row)
+
+
+def _known_rows(ws) -> dict[str, dict]:
+    columns = ("image_id", "present") + _ROW_COLUMNS + META_COLUMNS
+    con = ws.connect()
+    try:
+        cur = con.execute(f"SELECT {', '.join(columns)} FROM images")
+        return {r[2]: dict(zip(columns, r)) for r in cur}
+    finally:
+        con.close()
+
+
+def _meta_values(meta_rows, path) -> tuple:
+    row = meta_rows.get(path)
+    return tuple(row.values[c] for c in META_COLUMNS) if row else (None,) * len(META_COLUMNS)
+
+
+def _row(entry: FileEntry, facts, root, source, meta_rows) -> tuple:
+    """One catalog row (``_ROW_COLUMNS`` then, with metadata, ``META_COLUMNS``)."""
+    get = facts.get if isinstance(facts, dict) else lambda c: _fact(facts, c)
+    base = (entry.path, root, source, entry.size, entry.mtime_ns) + tuple(get(c) for c in FACT_COLUMNS)
+    return base + (_meta_values(meta_rows, entry.path) if meta_rows is not None else ())
+
+
+def _fact(facts: file_probe.FileFacts, column: str):
+    if column == "decodable":
+        return int(facts.decodable)
+    if column == "scan_issue":
+        return facts.issue.value if facts.issue else None
+    if column == "scan_message":
+        return facts.message or None
+    return getattr(facts, column)
+
+
+def _write_rows(ws, rows, with_metadata, now) -> None:
+    if rows:
+        with ws.transaction() as con:
+            _upsert(con, rows, with_metadata, now)
+
+
+def _upsert(con, rows, with_metadata, now) -> None:
+    if not rows:
+        return
+    columns = _ROW_COLUMNS + (META_COLUMNS if with_metadata else ())
+    updates = ", ".join(f"{c} = excluded.{c}" for c in columns[1:])
+    con.executemany(
+        f"INSERT INTO images ({', '.join(columns)}, present, first_seen, last_seen) "
+        f"VALUES ({', '.join('?' * len(columns))}, 1, ?, ?) "
+        f"ON CONFLICT(path) DO UPDATE SET {updates}, present = 1, last_seen = excluded.last_seen",
+        [row + (now, now) for row in rows],
+    )
+
+
+def _progress(iterable, enabled, **kwargs):
+    if not enabled:
+        return iterable
+    from tqdm.auto import tqdm
+
+    return tqdm(iterable, disable=not enabled, leave=False, mininterval=0.5, **kwargs)
+
+
+__all__ = ["ScanResult", "scan_folder", "scan_metadata", "exact_duplicates"]
