@@ -47,6 +47,9 @@ DIHEDRAL_TRANSPOSES: tuple[tuple[Image.Transpose, ...], ...] = (
     (_T.FLIP_LEFT_RIGHT, _T.ROTATE_270),  # 7 mirror, then rotate 270
 )
 
+#: What :func:`pair_pictures` can add beside the two images.
+VIEW_MODES = ("side_by_side", "difference", "overlay")
+
 ORIENTATION_NAMES = (
     "as is",
     "rotated 90",
@@ -168,6 +171,42 @@ def to_jpeg(image: Image.Image, *, quality: int = 85) -> bytes:
     buf = io.BytesIO()
     image.convert("RGB").save(buf, format="JPEG", quality=quality)
     return buf.getvalue()
+
+
+def pair_pictures(
+    a: Image.Image,
+    b: Image.Image,
+    *,
+    orientation: int | None = 0,
+    size: int = 256,
+    mode: str = "side_by_side",
+) -> list[Image.Image]:
+    """What the review shows for a pair: ``a``, ``b`` turned by ``orientation``, both squared.
+
+    ``mode`` adds a third picture: ``"difference"`` (:func:`difference_image`)
+    or ``"overlay"`` (:func:`overlay_image`); ``"side_by_side"`` adds none.
+    All pictures are ``size`` x ``size``.
+
+    Examples
+    --------
+    >>> from PIL import Image
+    >>> a = Image.new("RGB", (40, 20), (200, 0, 0))
+    >>> b = a.transpose(Image.Transpose.ROTATE_90)      # b is a turned a quarter
+    >>> pics = pair_pictures(a, b, orientation=3, size=32, mode="difference")
+    >>> [p.size for p in pics]
+    [(32, 32), (32, 32), (32, 32)]
+    >>> pics[2].getextrema()[0][1] < 40          # once turned back, b matches a
+    True
+    """
+    if mode not in VIEW_MODES:
+        raise ValueError(f"mode must be one of {', '.join(VIEW_MODES)}; got {mode!r}")
+    left = fit_square(a, size)
+    right = fit_square(orient(b, orientation), size)
+    if mode == "difference":
+        return [left, right, difference_image(left, right)]
+    if mode == "overlay":
+        return [left, right, overlay_image(left, right)]
+    return [left, right]
 
 
 class ThumbnailCache:
