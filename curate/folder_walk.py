@@ -73,7 +73,12 @@ def walk_images(root, *, extensions=IMAGE_EXTENSIONS) -> Iterator[FileEntry | Fi
             continue
         subfolders = []
         for entry in entries:
-            if entry.is_dir():  # follows symlinks; False for a broken or looping link
+            try:
+                is_dir = entry.is_dir()  # follows symlinks; False for a link to nothing
+            except OSError as exc:  # a link to itself or into a cycle of links (ELOOP)
+                yield _os_finding(entry.path, exc, "cannot stat")
+                continue
+            if is_dir:
                 try:
                     st = entry.stat()
                 except OSError as exc:
