@@ -78,9 +78,14 @@ CREATE TABLE hashes (
     dhash         INTEGER NOT NULL,
     phash         INTEGER NOT NULL,
     whash         INTEGER NOT NULL,
-    colorhash     INTEGER NOT NULL,
+    colorhash     INTEGER NOT NULL,       -- 56-bit colour code (imagehash colorhash, binbits=4)
     phash_dihedral BLOB NOT NULL,         -- 8 little-endian uint64: DCT hash of each rotation/flip
-    crop_hashes   BLOB,                   -- little-endian uint64 DCT hashes of centred sub-windows
+                                          -- (curate.hashing.DIHEDRAL_TRANSFORMS order)
+    crop_hashes   BLOB,                   -- little-endian uint64 DCT hashes of sub-windows
+                                          -- (curate.hashing.CROP_WINDOWS order)
+    thumb_width   INTEGER,                -- size of the reduced decode the hashes came from
+    thumb_height  INTEGER,
+    hash_version  INTEGER NOT NULL,       -- curate.hash_files.HASH_VERSION; others are recomputed
     hashed_at     TEXT NOT NULL
 );
 """
