@@ -11,7 +11,7 @@ The pure helpers here (:func:`orient`, :func:`fit_square`,
 :func:`difference_image`, :func:`overlay_image`) work on in-memory images and
 build what the review view shows: both images of a pair at the same display
 size, the second one turned by the pair's best ``orientation`` (one of the 8
-rotations/flips, numbered as in :data:`curate.hashing`'s dihedral order), and an
+rotations/flips, numbered as :data:`curate.hashing.DIHEDRAL_TRANSFORMS`), and an
 optional difference or overlay of the two.
 """
 
@@ -28,42 +28,34 @@ from typing import Iterable
 import numpy as np
 from PIL import Image, ImageDraw, ImageOps
 
+from curate.hashing import PIL_TRANSPOSE
+
 THUMBNAIL_DIR = "thumbnails"
 
 #: Background of the padding around a thumbnail that is not square (dark grey).
 PAD_COLOUR = (40, 40, 40)
 
-_T = Image.Transpose
-#: The 8 rotations/flips of the square (the dihedral group D4), by ``orientation`` code.
-#: Code k turns image b of a pair so that it lines up with image a.
-DIHEDRAL_TRANSPOSES: tuple[tuple[Image.Transpose, ...], ...] = (
-    (),  # 0 identity
-    (_T.ROTATE_90,),  # 1 rotate 90 degrees counter-clockwise
-    (_T.ROTATE_180,),  # 2 rotate 180 degrees
-    (_T.ROTATE_270,),  # 3 rotate 270 degrees counter-clockwise
-    (_T.FLIP_LEFT_RIGHT,),  # 4 mirror left-right
-    (_T.FLIP_LEFT_RIGHT, _T.ROTATE_90),  # 5 mirror, then rotate 90
-    (_T.FLIP_LEFT_RIGHT, _T.ROTATE_180),  # 6 mirror, then rotate 180 (= flip top-bottom)
-    (_T.FLIP_LEFT_RIGHT, _T.ROTATE_270),  # 7 mirror, then rotate 270
-)
-
 #: What :func:`pair_pictures` can add beside the two images.
 VIEW_MODES = ("side_by_side", "difference", "overlay")
 
+#: How a picture of image b is described once turned by the pair's ``orientation`` code.
 ORIENTATION_NAMES = (
     "as is",
-    "rotated 90",
-    "rotated 180",
-    "rotated 270",
-    "mirrored",
-    "mirrored, rotated 90",
-    "mirrored, rotated 180",
-    "mirrored, rotated 270",
+    "turned 90° anticlockwise",
+    "turned 180°",
+    "turned 270° anticlockwise",
+    "mirrored left-right",
+    "mirrored top-bottom",
+    "transposed",
+    "transversed",
 )
 
 
 def orient(image: Image.Image, orientation: int | None) -> Image.Image:
     """Apply the dihedral transform numbered ``orientation`` (0..7; None means 0).
+
+    The numbering is :data:`curate.hashing.DIHEDRAL_TRANSFORMS` (the order of
+    ``phash_t0..phash_t7``), so a pair's ``orientation`` turns image b onto image a.
 
     Examples
     --------
@@ -73,11 +65,10 @@ def orient(image: Image.Image, orientation: int | None) -> Image.Image:
     ((2, 3), (3, 2))
     """
     k = 0 if orientation is None else int(orientation)
-    if not 0 <= k < len(DIHEDRAL_TRANSPOSES):
+    if not 0 <= k < len(PIL_TRANSPOSE):
         raise ValueError(f"orientation must be an integer 0..7, got {orientation!r}")
-    for method in DIHEDRAL_TRANSPOSES[k]:
-        image = image.transpose(method)
-    return image
+    method = PIL_TRANSPOSE[k]
+    return image if method is None else image.transpose(method)
 
 
 def shrink(image: Image.Image, size: int) -> Image.Image:
