@@ -30,6 +30,15 @@ _EXPORTS: dict[str, str] = {
     "LeakageError": "curate.errors",
     "TaxonomyError": "curate.errors",
     "WorkspaceError": "curate.errors",
+    # review (curate.review imports ipywidgets only when one of its names is used)
+    "ReviewSession": "curate.review_queue",
+    "record_decision": "curate.review_queue",
+    "current_decisions": "curate.review_queue",
+    "ThumbnailCache": "curate.thumbnails",
+    "review": "curate.review",
+    "review_clusters": "curate.review",
+    "ReviewWidget": "curate.review",
+    "ClusterWidget": "curate.review",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]
