@@ -32,6 +32,7 @@ import numpy as np
 import pandas as pd
 
 from curate.errors import LeakageError
+from curate.grouping import is_placeholder_id
 from curate.manifest_table import standard_columns
 from curate.report import Finding, LeakReason, Report
 
@@ -90,6 +91,10 @@ class LeakageReport:
         The manifest the table came from.
     parameters : dict
         Settings used (radius, root ...), echoed in the JSON output.
+    ignored : DataFrame
+        Placeholder ids (``"unknown"``, ``"0"`` ...) found in more than one
+        split: ``column``, ``value``, ``images``, ``splits``. They link nothing
+        and are not leaks, but are listed so a person can see them.
     """
 
     leaks: pd.DataFrame
@@ -98,6 +103,9 @@ class LeakageReport:
     checks: dict
     source: str | None = None
     parameters: dict = field(default_factory=dict)
+    ignored: pd.DataFrame = field(
+        default_factory=lambda: pd.DataFrame(columns=["column", "value", "images", "splits"])
+    )
 
     @property
     def ok(self) -> bool:
@@ -136,6 +144,7 @@ class LeakageReport:
             "parameters": _plain(self.parameters),
             "counts": self.counts(),
             "leaks": leaks,
+            "ignored_ids": _plain(self.ignored.to_dict("records")),
         }
 
     def to_json(self, *, indent: int | None = 2) -> str:
@@ -200,6 +209,8 @@ def find_leaks(
     pairs: pd.DataFrame | None = None,
     problems: pd.DataFrame | None = None,
     ignore_ids: Iterable[str] = (),
+    patient_scope: str = "global",
+    lesion_scope: str = "global",
     columns: Mapping[str, str] | None = None,
     source: str | None = None,
     parameters: Mapping | None = None,
@@ -221,8 +232,17 @@ def find_leaks(
         Files the caller could not read: ``path``, ``reason`` (``missing_file``
         or ``unreadable_file``) and optionally ``message``.
     ignore_ids : iterable of str
-        Patient or lesion id values that are placeholders, not identities
-        (for example ``"unknown"``); they never link images.
+        More patient or lesion id values that are placeholders, not identities.
+        Values :func:`curate.grouping.is_placeholder_id` calls placeholders
+        (``"unknown"``, ``"0"``, ``"n/a"`` ...) never link images either; those
+        spanning splits are listed in :attr:`LeakageReport.ignored`.
+    patient_scope : {"global", "source"}
+        ``"global"`` (default, the cautious reading of a foreign manifest): one
+        patient id space for all rows. ``"source"``: ids are unique only within
+        the table's ``source`` column, so the key is (source, patient id).
+    lesion_scope : {"global", "source", "patient"}
+        As ``patient_scope``; ``"patient"`` keys lesions by (source, patient, lesion).
+        Ids are compared after stripping white space and case-folding.
     columns : mapping, optional
         Passed to :func:`~curate.manifest_table.standard_columns`.
     source, parameters
@@ -247,22 +267,33 @@ def find_leaks(
     """
     t = standard_columns(table, columns=columns, source=source or "table")
     order = split_order(t["split"].unique())
-    ignored = {str(v).strip() for v in ignore_ids}
+    extra_placeholders = {str(v).strip().casefold() for v in ignore_ids}
     found: list[pd.DataFrame] = []
     checks = {}
+    ignored = []
 
     if "sha256" in t.columns:
         checks[LeakReason.EXACT_DUPLICATE.value] = True
-        found.append(_shared_key_leaks(t, "sha256", LeakReason.EXACT_DUPLICATE, order, set()))
+        found.append(_shared_key_leaks(t, t["sha256"], LeakReason.EXACT_DUPLICATE, order))
     else:
         checks[LeakReason.EXACT_DUPLICATE.value] = False
     checks[LeakReason.NEAR_DUPLICATE.value] = pairs is not None
     if pairs is not None:
         found.append(_pair_leaks(t, pairs, order))
-    for column, reason in (("lesion_id", LeakReason.SAME_LESION), ("patient_id", LeakReason.SAME_PATIENT)):
+    for column, reason, scope, allowed in (
+        ("lesion_id", LeakReason.SAME_LESION, lesion_scope, ("global", "source", "patient")),
+        ("patient_id", LeakReason.SAME_PATIENT, patient_scope, ("global", "source")),
+    ):
+        if scope not in allowed:
+            raise ValueError(f"{column[:-3]}_scope must be one of {', '.join(allowed)}; got {scope!r}")
         checks[reason.value] = column in t.columns
         if column in t.columns:
-            found.append(_shared_key_leaks(t, column, reason, order, ignored))
+            placeholder = t[column].map(
+                lambda v: v is None or is_placeholder_id(v) or v.casefold() in extra_placeholders
+            ).astype(bool)
+            ignored.append(_spanning_placeholders(t[placeholder & t[column].notna()], column))
+            key = _scoped_key(t, column, scope).where(~placeholder, None)
+            found.append(_shared_key_leaks(t, key, reason, order))
     if problems is not None and len(problems):
         found.append(_problem_rows(t, problems))
 
@@ -283,15 +314,48 @@ def find_leaks(
         split_counts={s: int(counts[s]) for s in order},
         checks=checks,
         source=source,
-        parameters=dict(parameters or {}),
+        parameters=dict(parameters or {}, patient_scope=patient_scope, lesion_scope=lesion_scope),
+        ignored=pd.concat(ignored, ignore_index=True) if ignored else _spanning_placeholders(t[:0], "x"),
     )
 
 
+def _scoped_key(t: pd.DataFrame, column: str, scope: str) -> pd.Series:
+    """Case-folded id, prefixed by its scope (source, or source and patient)."""
+    key = t[column].map(lambda v: None if v is None else v.casefold())
+    if scope == "global":
+        return key
+    if "source" not in t.columns:
+        raise ValueError(f"a {scope!r} scope for {column} needs a 'source' column")
+    prefix = t["source"].fillna("").astype(str)
+    if scope == "patient":
+        patient = t["patient_id"] if "patient_id" in t.columns else pd.Series("", index=t.index)
+        prefix = prefix + "\x1f" + patient.fillna("").astype(str).str.casefold()
+    return (prefix + "\x1f" + key.fillna("")).where(key.notna(), None)
+
+
+def _spanning_placeholders(rows: pd.DataFrame, column: str) -> pd.DataFrame:
+    """Placeholder id values that occur in more than one split."""
+    out = pd.DataFrame(columns=["column", "value", "images", "splits"])
+    if rows.empty:
+        return out
+    folded = rows[column].str.casefold().rename("value")
+    stats = rows.groupby(folded)["split"].agg(["size", "nunique", lambda s: sorted(set(s))])
+    stats = stats[stats["nunique"] > 1]
+    return pd.DataFrame(
+        {"column": column, "value": stats.index, "images": stats["size"].to_numpy(),
+         "splits": stats.iloc[:, 2].to_numpy()}
+    ).reset_index(drop=True)
+
+
 def _shared_key_leaks(
-    t: pd.DataFrame, key: str, reason: LeakReason, order: list[str], ignored: set[str]
+    t: pd.DataFrame, key_values: pd.Series, reason: LeakReason, order: list[str]
 ) -> pd.DataFrame:
-    """One row per image that shares ``key`` with images of another split, outside its main split."""
-    sub = t.loc[t[key].notna() & ~t[key].isin(ignored), [key, "split", "path"]]
+    """One row per image that shares a key with images of another split, outside its main split."""
+    key = "_key"
+    value_column = {LeakReason.EXACT_DUPLICATE: "sha256", LeakReason.SAME_PATIENT: "patient_id",
+                    LeakReason.SAME_LESION: "lesion_id"}[reason]
+    t = t.assign(_key=key_values.to_numpy(), _value=t[value_column].to_numpy())
+    sub = t.loc[t[key].notna(), [key, "_value", "split", "path"]]
     n_splits = sub.groupby(key)["split"].nunique()
     sub = sub[sub[key].isin(n_splits.index[n_splits > 1])]
     if sub.empty:
@@ -305,7 +369,8 @@ def _shared_key_leaks(
         .set_index(key)["split"]
     )
     sub = sub.assign(main=sub[key].map(main)).sort_values([key, "path"], kind="stable")
-    anchors = sub[sub["split"] == sub["main"]].drop_duplicates(key).set_index(key)["path"]
+    anchor_rows = sub[sub["split"] == sub["main"]].drop_duplicates(key).set_index(key)
+    anchors, anchor_values = anchor_rows["path"], anchor_rows["_value"]
     evidence = {
         k: {"images_per_split": {s: int(n) for s, n in zip(g["split"], g["n"])}}
         for k, g in per_split.sort_values("rank").groupby(key)
@@ -318,9 +383,11 @@ def _shared_key_leaks(
             "split_a": outside["main"].to_numpy(),
             "path_b": outside["path"].to_numpy(),
             "split_b": outside["split"].to_numpy(),
-            "value": outside[key].to_numpy(),
+            "value": outside[key].map(anchor_values).to_numpy(),
             "distance": np.nan,
-            "evidence": [dict(evidence[k], **{key: k}) for k in outside[key]],
+            "evidence": [
+                dict(evidence[k], **{value_column: v}) for k, v in zip(outside[key], outside["_value"])
+            ],
         },
         columns=LEAK_COLUMNS,
     )

@@ -109,6 +109,10 @@ class Manifest:
         verify does not call them unexpected.
     table_digests : dict
         SHA-256 of each written table file by format (``csv``, ``parquet``).
+    leak_check : dict
+        How the split was checked for leakage at freezing time: the id scopes
+        (``patient_scope``, ``lesion_scope``) that ``curate check`` reuses, and
+        the leaks found (``known_leaks``, empty unless frozen despite leaks).
     recorded_fingerprint : str, optional
         The fingerprint read from a sidecar; None for a new manifest.
 
@@ -134,6 +138,7 @@ class Manifest:
     pseudonymised: bool = False
     excluded: tuple = ()
     table_digests: dict = field(default_factory=dict)
+    leak_check: dict = field(default_factory=dict)
     recorded_fingerprint: str | None = None
     format_version: int = FORMAT_VERSION
 
@@ -181,6 +186,7 @@ class Manifest:
             "command": self.command,
             "excluded": [dict(e) for e in self.excluded],
             "table_digests": dict(self.table_digests),
+            "leak_check": dict(self.leak_check),
         }
 
     @classmethod
@@ -211,6 +217,7 @@ class Manifest:
             pseudonymised=bool(record.get("pseudonymised", False)),
             excluded=tuple(record.get("excluded") or ()),
             table_digests=dict(record.get("table_digests") or {}),
+            leak_check=dict(record.get("leak_check") or {}),
             recorded_fingerprint=record.get("fingerprint"),
             format_version=version,
         )
@@ -231,6 +238,18 @@ class ManifestCheck:
 
     def counts(self) -> dict[str, int]:
         return self.report.counts()
+
+    def to_dict(self) -> dict:
+        """A plain mapping, ready for ``json.dumps`` (the ``--json`` output of verify)."""
+        frame = self.report.to_frame()
+        return {
+            "ok": self.ok,
+            "n_images": int(self.n_images),
+            "recorded_fingerprint": self.recorded_fingerprint,
+            "table_fingerprint": self.table_fingerprint,
+            "counts": self.counts(),
+            "findings": frame.astype(object).where(frame.notna(), None).to_dict("records"),
+        }
 
     def summary(self, max_rows: int = 20) -> str:
         if self.ok:

@@ -24,6 +24,8 @@ COLUMN_ALIASES: dict[str, tuple[str, ...]] = {
     "sha256": ("sha256", "digest", "sha_256"),
 }
 REQUIRED = ("path", "split")
+#: the short field names the scan's column mappings use
+FIELD_SHORT_NAMES = {"patient": "patient_id", "lesion": "lesion_id"}
 
 #: identifier values that mean "not recorded" and never link two images
 MISSING_ID_VALUES = frozenset({"", "nan", "none", "null", "na", "n/a"})
@@ -39,8 +41,8 @@ def standard_columns(
     table : DataFrame
         One row per image; needs a path column and a split column.
     columns : mapping, optional
-        Our field (``path``, ``split``, ``patient_id``, ``lesion_id``, ``sha256``)
-        -> the table's column name. Fields not given are found by the usual
+        Our field (``path``, ``split``, ``patient_id`` or ``patient``,
+        ``lesion_id`` or ``lesion``, ``sha256``) -> the table's column name. Fields not given are found by the usual
         spellings in :data:`COLUMN_ALIASES`.
     source : str
         Name used in error messages (the manifest file).
@@ -71,7 +73,7 @@ def standard_columns(
     """
     if not isinstance(table, pd.DataFrame):
         raise TypeError(f"table must be a pandas DataFrame, got {type(table).__name__}")
-    mapping = dict(columns or {})
+    mapping = {FIELD_SHORT_NAMES.get(k, k): v for k, v in dict(columns or {}).items()}
     unknown = set(mapping) - set(COLUMN_ALIASES)
     if unknown:
         raise ValueError(
