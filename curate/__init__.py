@@ -30,12 +30,12 @@ _EXPORTS: dict[str, str] = {
     "LeakageError": "curate.errors",
     "TaxonomyError": "curate.errors",
     "WorkspaceError": "curate.errors",
-    # review (curate.review imports ipywidgets only when one of its names is used)
+    # review (ipywidgets is imported only when a widget is built; the function
+    # `review` stays in curate.review because the submodule has that name)
     "ReviewSession": "curate.review_queue",
     "record_decision": "curate.review_queue",
     "current_decisions": "curate.review_queue",
     "ThumbnailCache": "curate.thumbnails",
-    "review": "curate.review",
     "review_clusters": "curate.review",
     "ReviewWidget": "curate.review",
     "ClusterWidget": "curate.review",
