@@ -137,3 +137,172 @@ def scan_command(workspace, folder, source, metadata, columns, root, quiet) -> i
         )
     click.echo(result.summary())
     return EXIT_FINDINGS if not result.report.ok else EXIT_OK
+
+
+# --- leakage check and manifests ---------------------------------------------------
+
+
+def _split_table_columns(text: str | None) -> dict[str, str]:
+    """``path=file,split=fold`` -> {"path": "file", "split": "fold"} (checked by the library)."""
+    pairs = [part.partition("=") for part in (text or "").split(",") if part.strip()]
+    bad = [name for name, sep, column in pairs if not sep or not name.strip() or not column.strip()]
+    if bad:
+        raise click.BadParameter(f"expected field=column, got {bad[0]!r}", param_hint="--columns")
+    return {name.strip(): column.strip() for name, _, column in pairs}
+
+
+@command(main, "check", "Check any split manifest or split folder for leakage.")
+@click.argument("manifest", type=click.Path(exists=True))
+@click.option("--root", type=click.Path(file_okay=False, exists=True),
+              help="Folder the manifest's relative paths start from.")
+@click.option("--radius", type=click.IntRange(0, 64), default=None,
+              help="Largest Hamming distance (bits, inclusive) for a near-duplicate.")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False, allow_dash=True),
+              help="Write the full report as JSON to this file ('-' for standard output).")
+@click.option("--cache", type=click.Path(file_okay=False),
+              help="Folder of the hash cache (a workspace); default $CURATE_CACHE_DIR or ~/.cache/curate.")
+@click.option("--no-cache", is_flag=True, help="Do not cache perceptual hashes.")
+@click.option("--no-near-duplicates", is_flag=True, help="Skip hashing and the near-duplicate search.")
+@click.option("--columns", help="Column names when they differ, e.g. path=file,split=fold,patient=pid.")
+@click.option("--ignore-id", multiple=True, help="A placeholder patient/lesion id that links nothing (repeatable).")
+@click.option("--max-rows", type=click.IntRange(0), default=20, show_default=True,
+              help="Leaks listed in the printed summary.")
+@click.option("-q", "--quiet", is_flag=True, help="No progress bars.")
+def check_command(manifest, root, radius, json_path, cache, no_cache, no_near_duplicates, columns,
+                  ignore_id, max_rows, quiet) -> int:
+    """Check MANIFEST for leakage between its splits; needs no workspace.
+
+    MANIFEST is a CSV/TSV or Parquet table with a path column and a split
+    column (optional patient, lesion and sha256 columns), a frozen manifest's
+    .manifest.json sidecar, or a folder with one subfolder per split. Every
+    file is re-digested (SHA-256) and hashed; reported are byte-identical
+    files, near-duplicates, shared patient ids and shared lesion ids across
+    splits, plus missing and unreadable files.
+
+    Exit code 1 means leakage (or an unreadable/missing file) was found; 2
+    means the manifest cannot be used (no path or split column, rows without a
+    split, unknown file type).
+    """
+    from curate.leakage_check import check_leakage
+
+    report = check_leakage(
+        manifest, root=root, columns=_split_table_columns(columns),
+        near_duplicates=not no_near_duplicates, radius=radius,
+        cache=False if no_cache else cache, ignore_ids=ignore_id, progress=not quiet,
+    )
+    _write_json(json_path, report.to_json())
+    click.echo(report.summary(max_rows=max_rows), err=json_path == "-")
+    return EXIT_OK if report.ok else EXIT_FINDINGS
+
+
+def _write_json(json_path: str | None, text: str) -> None:
+    if json_path == "-":
+        click.echo(text)
+    elif json_path:
+        from pathlib import Path
+
+        Path(json_path).write_text(text + "\n", encoding="utf-8")
+
+
+@command(main, "verify", "Re-digest a frozen manifest's files and compare.")
+@click.argument("manifest", type=click.Path(exists=True, dir_okay=False))
+@click.option("--root", type=click.Path(file_okay=False, exists=True),
+              help="Folder the manifest's relative paths start from (default: the recorded root).")
+@click.option("--no-unexpected", is_flag=True, help="Do not list image files the manifest does not name.")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False, allow_dash=True),
+              help="Write the findings as JSON to this file ('-' for standard output).")
+@click.option("--max-rows", type=click.IntRange(0), default=20, show_default=True,
+              help="Findings listed in the printed summary.")
+@click.option("-q", "--quiet", is_flag=True, help="No progress bar.")
+def verify_command(manifest, root, no_unexpected, json_path, max_rows, quiet) -> int:
+    """Verify the frozen MANIFEST (NAME.csv, NAME.parquet or NAME.manifest.json).
+
+    Every listed file is re-digested (SHA-256) and compared; reported are
+    missing, unreadable and changed files, image files under the root the
+    manifest does not name, a fingerprint mismatch (digest or split column
+    edited after freezing) and a table file changed since freezing.
+
+    Exit code 0: everything matches; 1: a mismatch was found; 2: the manifest
+    cannot be used (no sidecar, unknown format_version, not a table).
+    """
+    import json
+
+    from curate.manifest_io import verify_manifest
+
+    result = verify_manifest(manifest, root=root, unexpected=not no_unexpected, progress=not quiet)
+    _write_json(json_path, json.dumps(result.to_dict(), indent=2))
+    click.echo(result.summary(max_rows=max_rows), err=json_path == "-")
+    return EXIT_OK if result.ok else EXIT_FINDINGS
+
+
+SALT_ENV = "CURATE_PSEUDONYM_SALT"
+
+
+def _command_line_without_secrets(argv: list[str]) -> str:
+    """The command line as typed, with the value of ``--salt`` replaced by ``***``."""
+    import shlex
+
+    out, hide = [], False
+    for arg in argv:
+        if hide:
+            out.append("***")
+        elif arg.startswith("--salt="):
+            out.append("--salt=***")
+        else:
+            out.append(arg)
+        hide = arg == "--salt"
+    return "curate " + " ".join(shlex.quote(a) for a in out)
+
+
+@command(main, "freeze", "Freeze the workspace's split as a verifiable manifest.")
+@click.argument("workspace", type=click.Path(file_okay=False, exists=True))
+@click.option("--name", required=True, help="Manifest name: writes manifests/NAME.csv, .parquet, .manifest.json.")
+@click.option("--root", type=click.Path(file_okay=False, exists=True),
+              help="Declared root the manifest's paths are relative to (default: deepest common folder).")
+@click.option("--pseudonymise", is_flag=True,
+              help="Replace patient, lesion and group ids by salted HMAC-SHA256 pseudonyms.")
+@click.option("--salt", help=f"The secret for --pseudonymise (at least 16 bytes); or set ${SALT_ENV}.")
+@click.option("--salt-file", type=click.Path(dir_okay=False, exists=True),
+              help="Read the secret for --pseudonymise from this file (first line).")
+@click.option("--allow-leaks", is_flag=True, help="Freeze even though the split leaks (recorded in the sidecar).")
+@click.option("-q", "--quiet", is_flag=True, help="No progress bar.")
+def freeze_command(workspace, name, root, pseudonymise, salt, salt_file, allow_leaks, quiet) -> int:
+    """Freeze the split of WORKSPACE as manifest NAME.
+
+    Writes WORKSPACE/manifests/NAME.csv and NAME.parquet (one row per image,
+    sorted by path relative to the declared root: sha256, split, group id,
+    patient and lesion ids, source, taxonomy node, training class, skin-tone
+    bin) and the sidecar NAME.manifest.json (fingerprint over the sorted
+    (sha256, split) pairs, split parameters and seed, package versions,
+    creation time, this command). Files are written atomically and an
+    existing name is never overwritten. No EXIF or other file metadata is
+    copied. Pseudonymised ids are not anonymous: keep the salt secret, and
+    handle the data according to local law and your institution's rules.
+
+    Exit code 1: the split leaks, so nothing was written (with --allow-leaks
+    it is written and the exit code is still 1); 2: the name exists, there is no split, a file changed since the scan, or
+    --pseudonymise lacks a salt.
+    """
+    import os
+
+    from curate.errors import LeakageError
+    from curate.freeze import freeze_split
+    from curate.store import Workspace
+
+    if salt_file:
+        with open(salt_file, encoding="utf-8") as f:
+            salt = f.readline().rstrip("\r\n")
+    salt = salt or os.environ.get(SALT_ENV) if pseudonymise else salt
+    if salt and not pseudonymise:
+        raise click.UsageError("--salt/--salt-file only make sense with --pseudonymise")
+    try:
+        frozen = freeze_split(
+            Workspace.open(workspace), name, root=root, pseudonymise=pseudonymise, salt=salt,
+            allow_leaks=allow_leaks, command=_command_line_without_secrets(sys.argv[1:]),
+            progress=not quiet,
+        )
+    except LeakageError as exc:
+        click.echo(f"error: {exc}", err=True)
+        return EXIT_FINDINGS
+    click.echo(frozen.summary())
+    return EXIT_OK if frozen.leakage.ok else EXIT_FINDINGS
