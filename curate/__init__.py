@@ -39,6 +39,10 @@ _EXPORTS: dict[str, str] = {
     "review_clusters": "curate.review",
     "ReviewWidget": "curate.review",
     "ClusterWidget": "curate.review",
+    # demo scenario and pipeline
+    "generate_scenario": "curate.demo",
+    "Scenario": "curate.demo",
+    "run_pipeline": "curate.pipeline",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]

@@ -306,3 +306,40 @@ def freeze_command(workspace, name, root, pseudonymise, salt, salt_file, allow_l
         return EXIT_FINDINGS
     click.echo(frozen.summary())
     return EXIT_OK if frozen.leakage.ok else EXIT_FINDINGS
+
+
+# --- demo --------------------------------------------------------------------------
+
+
+@command(main, "demo", "Generate the invented demo scenario and run the pipeline on it.")
+@click.argument("out", type=click.Path(file_okay=False))
+@click.option("--images", "n_images", type=click.IntRange(min=40), default=600, show_default=True,
+              help="Files to generate, copies and planted bad files included (n_images).")
+@click.option("--seed", "--random-state", "random_state", type=int, default=0, show_default=True,
+              help="Seed; the same seed gives byte-identical files.")
+@click.option("--workers", type=click.IntRange(min=1), default=None,
+              help="Processes drawing images (default: up to 2).")
+@click.option("-q", "--quiet", is_flag=True, help="No progress bars.")
+def demo_command(out, n_images, random_state, workers, quiet) -> int:
+    """Generate the demo scenario in OUT, then run every pipeline step that exists on it.
+
+    The scenario is invented: a regional teledermatology network pooling
+    procedurally drawn lesion pictures from three clinics and a dermoscopy
+    archive, with per-source metadata CSVs that name columns and spell labels
+    differently, follow-up visits, copies (byte-identical, re-encoded, resized,
+    rotated, flipped, cropped, colour-shifted) and planted problems (corrupt and
+    empty files, patient-like EXIF, placeholder ids, a copy with another label).
+    OUT/truth/ holds the ground truth, which the pipeline never reads; the
+    workspace is OUT/workspace.
+
+    OUT must be new, empty, or an earlier demo folder (which is replaced).
+    The planted problems are expected, so exit code 0 means the run completed.
+    """
+    from curate.demo import generate_scenario
+    from curate.pipeline import run_pipeline
+
+    scenario = generate_scenario(out, n_images=n_images, random_state=random_state,
+                                 progress=not quiet, workers=workers)
+    click.echo(scenario.summary())
+    run_pipeline(out, progress=not quiet, echo=click.echo)
+    return EXIT_OK

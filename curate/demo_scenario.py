@@ -374,7 +374,7 @@ class _Planner:
         look: LesionLook = lesion["look"]
         zoom = float(rng.uniform(0.8, 1.25))
         if modality == "dermoscopic":
-            zoom = min(float(rng.uniform(1.6, 2.3)), 0.33 / look.size)
+            zoom = min(float(rng.uniform(1.6, 2.3)), 0.26 / look.size)
         return Capture(
             modality=modality,
             width=w,

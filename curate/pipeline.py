@@ -1,0 +1,211 @@
+"""Run every curation step that exists on a scenario folder and summarise what each found.
+
+A scenario folder (as :func:`curate.demo.generate_scenario` writes it, or one
+laid out the same way by hand) holds ``sources.json``: a list of
+``{"name", "folder", "metadata", "columns"}`` with paths relative to the
+folder. :func:`run_pipeline` creates ``OUT/workspace`` and runs :data:`STEPS`
+in order; each step is a plain function of a :class:`PipelineContext` that
+returns a small dict for the summary. Adding a step is one entry in the list.
+
+Nothing here reads the scenario's ``truth/`` folder.
+
+curate curates data; it does not diagnose. Clinical use needs validation and
+licensed practice; patient data handling follows local law and institutional rules.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+CAUTIONS = (
+    "Cautions: curate curates data; it does not diagnose. Clinical use needs validation and "
+    "licensed practice; patient data handling follows local law and institutional rules."
+)
+WORKSPACE_DIR = "workspace"
+SOURCE_KEYS = ("name", "folder", "metadata", "columns")
+
+
+@dataclass
+class PipelineContext:
+    """What the steps share: the folder, the workspace, the sources and how to report."""
+
+    out_dir: Path
+    workspace: object
+    sources: list
+    progress: bool
+    echo: Callable[[str], None]
+    results: dict = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Step:
+    """One pipeline step: a name and a function of the context returning a summary dict."""
+
+    name: str
+    run: Callable[[PipelineContext], dict]
+
+
+def read_sources(out_dir) -> list[dict]:
+    """Read and check ``OUT/sources.json``.
+
+    Parameters
+    ----------
+    out_dir : str or path
+
+    Returns
+    -------
+    list of dict
+        Each with ``name``, ``folder``, ``metadata`` (paths relative to ``out_dir``)
+        and ``columns`` (our field -> the CSV's column).
+
+    Raises
+    ------
+    FileNotFoundError
+        There is no ``sources.json``.
+    ValueError
+        It is not a list of such entries; the message names the entry and key.
+
+    Examples
+    --------
+    >>> import tempfile, json, os
+    >>> d = tempfile.mkdtemp()
+    >>> with open(os.path.join(d, "sources.json"), "w") as f:
+    ...     json.dump([{"name": "a", "folder": "a", "metadata": "a.csv", "columns": {}}], f)
+    >>> [s["name"] for s in read_sources(d)]
+    ['a']
+    """
+    path = Path(out_dir) / "sources.json"
+    if not path.is_file():
+        raise FileNotFoundError(f"{path} does not exist; a scenario folder needs a sources.json")
+    try:
+        entries = json.loads(path.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise ValueError(f"{path}: not readable JSON ({exc})") from None
+    if not isinstance(entries, list) or not entries:
+        raise ValueError(f"{path}: expected a non-empty list of sources")
+    names = set()
+    for i, entry in enumerate(entries):
+        where = f"{path}: entry {i}"
+        if not isinstance(entry, dict):
+            raise ValueError(f"{where}: expected an object with keys {', '.join(SOURCE_KEYS)}")
+        missing = [k for k in SOURCE_KEYS if k not in entry]
+        if missing:
+            raise ValueError(f"{where}: missing key(s) {', '.join(missing)}")
+        if not isinstance(entry["columns"], dict):
+            raise ValueError(f"{where}: 'columns' must map our fields to CSV column names")
+        if entry["name"] in names:
+            raise ValueError(f"{where}: source name {entry['name']!r} appears twice")
+        names.add(entry["name"])
+    return entries
+
+
+# --- steps ---------------------------------------------------------------------------
+
+
+def scan_sources(ctx: PipelineContext) -> dict:
+    """Scan each source folder with its metadata CSV into the workspace."""
+    from curate.ingest import scan_folder
+
+    problems: dict[str, int] = {}
+    files = 0
+    result = None
+    for source in ctx.sources:
+        result = scan_folder(
+            ctx.workspace,
+            ctx.out_dir / source["folder"],
+            source=source["name"],
+            metadata=ctx.out_dir / source["metadata"],
+            columns=source["columns"],
+            progress=ctx.progress,
+        )
+        ctx.echo("  " + result.summary())
+        files += result.files_seen
+        for kind, n in result.report.counts().items():
+            problems[kind] = problems.get(kind, 0) + n
+    return {
+        "files": files,
+        "problems": dict(sorted(problems.items())),
+        "exact_duplicate_files": result.exact_duplicate_files if result else 0,
+        "exact_duplicate_groups": result.exact_duplicate_groups if result else 0,
+    }
+
+
+#: the steps run in order; a step is added here once its library code exists
+STEPS: tuple[Step, ...] = (Step("scan", scan_sources),)
+
+
+def run_pipeline(out_dir, *, progress: bool = True, echo: Callable[[str], None] = print, steps=None) -> dict:
+    """Run the curation steps on a scenario folder and print a short summary.
+
+    Parameters
+    ----------
+    out_dir : str or path
+        A scenario folder holding ``sources.json`` (see :func:`read_sources`).
+    progress : bool
+        Show progress bars (tqdm, on stderr).
+    echo : callable
+        Where summary lines go (``print`` by default; ``click.echo`` in the CLI).
+    steps : sequence of Step, optional
+        Defaults to :data:`STEPS`.
+
+    Returns
+    -------
+    dict
+        ``workspace`` (path), ``steps`` (step name -> its summary dict),
+        ``seconds`` (step name -> wall time) and ``cautions``.
+
+    Examples
+    --------
+    >>> import tempfile, json, os
+    >>> from PIL import Image
+    >>> d = tempfile.mkdtemp(); os.mkdir(os.path.join(d, "clinic"))
+    >>> Image.new("RGB", (8, 8), "tan").save(os.path.join(d, "clinic", "a.png"))
+    >>> with open(os.path.join(d, "clinic.csv"), "w") as f:
+    ...     _ = f.write("file,pid\\na.png,P1\\n")
+    >>> with open(os.path.join(d, "sources.json"), "w") as f:
+    ...     json.dump([{"name": "clinic", "folder": "clinic", "metadata": "clinic.csv",
+    ...                 "columns": {"path": "file", "patient": "pid"}}], f)
+    >>> summary = run_pipeline(d, progress=False, echo=lambda line: None)
+    >>> summary["steps"]["scan"]["files"], summary["steps"]["scan"]["problems"]
+    (1, {})
+    """
+    from curate.store import Workspace
+
+    out = Path(out_dir).absolute()
+    sources = read_sources(out)
+    ws = Workspace.create(out / WORKSPACE_DIR)
+    ctx = PipelineContext(out, ws, sources, progress, echo)
+    summary = {"workspace": str(ws.path), "steps": ctx.results, "seconds": {}, "cautions": CAUTIONS}
+    for step in STEPS if steps is None else steps:
+        echo(f"{step.name}:")
+        started = time.perf_counter()
+        ctx.results[step.name] = step.run(ctx)
+        summary["seconds"][step.name] = round(time.perf_counter() - started, 3)
+    for line in summary_lines(summary):
+        echo(line)
+    return summary
+
+
+def summary_lines(summary: dict) -> list[str]:
+    """The closing lines of a pipeline run: one per step, then the cautions.
+
+    Examples
+    --------
+    >>> summary_lines({"workspace": "ws", "steps": {"scan": {"files": 2}},
+    ...                "seconds": {"scan": 0.5}, "cautions": "Cautions: ..."})
+    ['summary (workspace ws):', '  scan (0.5 s): files 2', 'Cautions: ...']
+    """
+    lines = [f"summary (workspace {summary['workspace']}):"]
+    for name, result in summary["steps"].items():
+        parts = []
+        for key, value in result.items():
+            if isinstance(value, dict):
+                value = ", ".join(f"{n} {k}" for k, n in value.items()) or "none"
+            parts.append(f"{key.replace('_', ' ')} {value}")
+        lines.append(f"  {name} ({summary['seconds'].get(name, 0):.1f} s): " + "; ".join(parts))
+    lines.append(summary["cautions"])
+    return lines
