@@ -187,26 +187,41 @@ class ReviewWidget(_View):
     # --- filters -------------------------------------------------------------------
 
     def _filter_widgets(self, w) -> dict:
+        """One dropdown per filter; labels are shown, ``self._filter_values`` maps them back."""
         s = self.session
-        conflict_options = [("any", None), ("with a conflict", True), ("without", False)]
-        conflict_options += [(c, c) for c in s.options("conflict")]
         current = s.filter
+        choices = {
+            "verdict": [("any", None)] + [(v, v) for v in s.options("verdict")],
+            "source": [("any", None)] + [(v, v) for v in s.options("source")],
+            "conflict": [("any", None), ("with a conflict", True), ("without", False)]
+            + [(c, c) for c in s.options("conflict")],
+            "node": [("any", None)] + [(v, v) for v in s.options("node")],
+        }
+        self._filter_values = {name: dict(opts) for name, opts in choices.items()}
         out = {}
-        for name, options, value in (
-            ("verdict", [("any", None)] + [(v, v) for v in s.options("verdict")], current.verdict),
-            ("source", [("any", None)] + [(v, v) for v in s.options("source")], current.source),
-            ("conflict", conflict_options, current.conflict),
-            ("node", [("any", None)] + [(v, v) for v in s.options("node")], current.node),
-        ):
-            values = [v for _, v in options]
-            dd = w.Dropdown(options=options, value=value if value in values else None,
-                            description=name, layout=w.Layout(width="220px"))
+        for name, opts in choices.items():
+            wanted = getattr(current, name)
+            label = next((lab for lab, v in opts if v is wanted or (
+                v is not None and not isinstance(v, bool) and v == wanted)), "any")
+            # labels as values: a Dropdown whose value is None shows nothing selected
+            dd = w.Dropdown(options=[lab for lab, _ in opts], value=label, description=name,
+                            layout=w.Layout(width="220px"))
             dd.observe(self._on_filter, names="value")
             out[name] = dd
         return out
 
+    def set_filter(self, **filters) -> None:
+        """Set filter dropdowns by value (``verdict="near"``, ``conflict=True`` ...) and redraw."""
+        for name, value in filters.items():
+            labels = [lab for lab, v in self._filter_values[name].items()
+                      if v is value or (not isinstance(v, bool) and v is not None and v == value)]
+            if not labels:
+                raise ValueError(f"{name}={value!r} is not one of the choices")
+            self.filters[name].value = labels[0]
+
     def _on_filter(self, _change) -> None:
-        self.session.set_filter(**{k: dd.value for k, dd in self.filters.items()})
+        self.session.set_filter(**{
+            name: self._filter_values[name][dd.value] for name, dd in self.filters.items()})
         self.show()
 
     # --- actions -------------------------------------------------------------------

@@ -164,7 +164,7 @@ def test_review_notebook_decision_reaches_the_store(lab):
         browser = p.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS,
                                     headless=True, timeout=120_000)
         try:
-            page = browser.new_page(viewport={"width": 1400, "height": 1000})
+            page = browser.new_page(viewport={"width": 1400, "height": 1400})
             page.set_default_timeout(120_000)
             page.goto(f"{base}/lab/tree/{NOTEBOOK}?token={token}", wait_until="domcontentloaded")
             page.wait_for_function("() => window.jupyterapp && window.jupyterapp.shell", timeout=120_000)

@@ -96,16 +96,20 @@ def test_the_difference_view_shows_the_turned_copy_matching_the_original(ws):
 
 def test_filters_change_the_queue(ws):
     r = ReviewWidget(ws, reviewer="ana")
-    r.filters["conflict"].value = True
+    assert [dd.value for dd in r.filters.values()] == ["any"] * 4
+    r.filters["conflict"].value = "with a conflict"
     assert len(r.session) == 1 and r.session.current.key == (1, 9)
-    r.filters["conflict"].value = None
-    r.filters["verdict"].value = "near"
-    r.filters["node"].value = "melanoma"
+    r.filters["conflict"].value = "any"
+    r.set_filter(verdict="near", node="melanoma")
     assert len(r.session) == 0 and r.session.current is None
     assert r.buttons["same_image"].disabled
     assert "no candidate pairs" in r.pair_info.value
     r.buttons["same_image"].click()  # disabled in the browser; a stray call does nothing
     assert decisions(ws) == []
+    with pytest.raises(ValueError, match="not one of the choices"):
+        r.set_filter(verdict="blurry")
+    started = ReviewWidget(ws, reviewer="ana", source="south")
+    assert started.filters["source"].value == "south" and len(started.session) == 4
 
 
 def test_thumbnails_are_made_once_and_then_read_from_the_cache(ws):
