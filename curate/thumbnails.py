@@ -1,6 +1,7 @@
 """Review thumbnails: made once per file content and size, then read from a cache.
 
-A thumbnail is the image shrunk to fit a ``size`` x ``size`` box (aspect kept),
+A thumbnail is the image turned upright by its EXIF Orientation tag (as
+hashing does) and shrunk to fit a ``size`` x ``size`` box (aspect kept),
 in RGB, saved as JPEG under ``WORKSPACE/thumbnails/<aa>/<sha256>_<size>.jpg``
 (``aa`` = the first two hex digits). The key is the file's SHA-256, so a file
 that is copied, renamed or found in two sources is shrunk once, and a changed
@@ -297,7 +298,9 @@ def _read_shrunk(path: Path, size: int) -> Image.Image:
         # JPEG files can be decoded at 1/2, 1/4 or 1/8 scale directly: much faster for big photos
         im.draft("RGB", (size, size))
         im.load()
-        return shrink(im, size)
+        # upright as the EXIF Orientation tag says, as hashing sees it (curate.hash_files),
+        # so a pair's orientation code applies to what is shown
+        return shrink(ImageOps.exif_transpose(im), size)
 
 
 def _write_atomic(target: Path, data: bytes) -> None:

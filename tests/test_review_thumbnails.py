@@ -4,7 +4,7 @@ import hashlib
 
 import numpy as np
 import pytest
-from PIL import Image
+from PIL import Image, ImageOps
 from review_workspace import draw_lesion
 
 from curate.hashing import DIHEDRAL_TRANSFORMS
@@ -119,3 +119,18 @@ def test_missing_or_broken_files_give_a_placeholder_that_is_not_cached(tmp_path)
         cache.path_for("../../etc")
     with pytest.raises(ValueError, match="size must be"):
         ThumbnailCache(tmp_path, size=2)
+
+
+def test_thumbnails_are_turned_upright_by_the_exif_orientation_tag(tmp_path):
+    im = draw_lesion(4, size=160).crop((0, 0, 160, 100))  # landscape
+    exif = Image.Exif()
+    exif[0x0112] = 6  # Exif 2.32 Orientation tag: 6 = display rotated 90 degrees clockwise
+    path = tmp_path / "tagged.jpg"
+    im.save(path, exif=exif, quality=95)
+    thumb = ThumbnailCache(tmp_path / "thumbs", size=80).get(path)
+    # Pillow's ImageOps.exif_transpose is the reference for what upright means
+    with Image.open(path) as raw:
+        upright = ImageOps.exif_transpose(raw)
+    assert upright.size == (100, 160) and thumb.size == (50, 80)
+    ref = np.asarray(upright.convert("RGB").resize(thumb.size), dtype=float)
+    assert np.abs(np.asarray(thumb, dtype=float) - ref).mean() < 8
