@@ -249,9 +249,9 @@ def _command_line_without_secrets(argv: list[str]) -> str:
         elif arg.startswith("--salt="):
             out.append("--salt=***")
         else:
-            out.append(arg)
+            out.append(shlex.quote(arg))
         hide = arg == "--salt"
-    return "curate " + " ".join(shlex.quote(a) for a in out)
+    return "curate " + " ".join(out)
 
 
 @command(main, "freeze", "Freeze the workspace's split as a verifiable manifest.")
@@ -343,3 +343,295 @@ def demo_command(out, n_images, random_state, workers, quiet) -> int:
     click.echo(scenario.summary())
     run_pipeline(out, progress=not quiet, echo=click.echo)
     return EXIT_OK
+
+
+# --- taxonomy ----------------------------------------------------------------------
+
+
+def _taxonomy_or_input_error(ws, tree):
+    from curate.taxonomy_workspace import workspace_taxonomy
+
+    return workspace_taxonomy(ws, tree)
+
+
+def _open_workspace(workspace):
+    from curate.store import Workspace
+
+    return Workspace.open(workspace)
+
+
+@command(main, "taxonomy", "Map raw labels onto a taxonomy tree (writes image_nodes); list what is unmapped.")
+@click.argument("workspace", type=click.Path(file_okay=False, exists=True))
+@click.option("--tree", type=click.Path(dir_okay=False, exists=True),
+              help="Taxonomy file (.yaml/.yml/.csv). Default: the tree last used here, else the example tree.")
+@click.option("--labels", "labels", required=True, type=click.Path(dir_okay=False),
+              help="Label-mapping CSV you own (raw_label,node,status,...); created by --propose if missing.")
+@click.option("--propose", is_flag=True, help="Append proposed mappings for labels the file lacks.")
+@click.option("--accept-proposed", is_flag=True,
+              help="Also apply rows with status 'proposed' (default: only 'confirmed').")
+@click.option("--max-rows", default=20, show_default=True, help="Rows of each list to print.")
+def taxonomy_command(workspace, tree, labels, propose, accept_proposed, max_rows) -> int:
+    """Map every catalog label of WORKSPACE through the mapping file --labels onto --tree.
+
+    The tree is checked first; every problem is listed with its line number
+    (exit 2). Labels are matched by normalised text (case, spacing,
+    punctuation, British/American spelling). With --propose, labels the file
+    lacks are appended as 'proposed' rows (exact name/id match, synonym or
+    abbreviation, fuzzy match with a score) for you to confirm by setting
+    status to 'confirmed' (or to fix or reject). Your rows are never changed.
+
+    Images whose label stays unmapped keep an empty node (nothing is dropped)
+    and are listed with their counts. Lesions whose images carry different
+    nodes, and exact/near-duplicate pairs with different nodes, are listed as
+    label conflicts to review.
+
+    Exit code 1 means unmapped labels or label conflicts remain.
+    """
+    from curate.taxonomy_workspace import map_workspace_labels, workspace_conflicts
+
+    ws = _open_workspace(workspace)
+    taxonomy = _taxonomy_or_input_error(ws, tree)
+    result = map_workspace_labels(ws, taxonomy, labels, propose=propose, accept_proposed=accept_proposed,
+                                  tree_path=tree)
+    click.echo(f"taxonomy: {len(taxonomy)} nodes, {len(taxonomy.leaves)} leaves ({taxonomy.source})")
+    if propose:
+        methods = result.proposals["method"].value_counts().to_dict() if len(result.proposals) else {}
+        click.echo(f"proposed {len(result.proposals)} new mapping row(s) in {result.mapping_path}: "
+                   + (", ".join(f"{n} {m}" for m, n in methods.items()) or "none needed"))
+    click.echo(f"mapped {result.mapped} of {result.images} images")
+    if not result.ok:
+        n_images = int(result.unmapped["images"].sum())
+        click.echo(f"{len(result.unmapped)} label(s) unmapped ({n_images} images):")
+        click.echo(result.unmapped.head(max_rows).to_string(index=False))
+        if len(result.unmapped) > max_rows:
+            click.echo(f"  ... and {len(result.unmapped) - max_rows} more")
+    conflicts = workspace_conflicts(ws, taxonomy)
+    if len(conflicts):
+        click.echo(f"{len(conflicts)} label conflict(s) to review "
+                   + str(conflicts["kind"].value_counts().to_dict()) + ":")
+        click.echo(conflicts.head(max_rows).to_string(index=False))
+    return EXIT_FINDINGS if (not result.ok or len(conflicts)) else EXIT_OK
+
+
+@command(main, "balance", "Images, lesions and patients per taxonomy node, rolled up, per split/source...")
+@click.argument("workspace", type=click.Path(file_okay=False, exists=True))
+@click.option("--tree", type=click.Path(dir_okay=False, exists=True),
+              help="Taxonomy file. Default: the tree last used with `curate taxonomy`.")
+@click.option("--depth", type=click.IntRange(min=0), help="Show nodes down to this depth (root = 0).")
+@click.option("--by", type=click.Choice(["split", "source", "modality", "ita_bin"]),
+              help="Break the counts down by this column.")
+@click.option("--min-lesions", default=10, show_default=True, type=click.IntRange(min=0),
+              help="Flag nodes with fewer distinct lesions (per split with --by split, else in total).")
+@click.option("--max-share-ratio", default=2.0, show_default=True, type=click.FloatRange(min=1),
+              help="Flag a node whose share of a group's lesions differs from its overall share by "
+                   "more than this factor.")
+@click.option("--plot", type=click.Path(dir_okay=False), help="Write a bar plot (PNG) per group.")
+@click.option("--measure", default="lesions", show_default=True,
+              type=click.Choice(["images", "lesions", "patients"]), help="What the plot shows.")
+@click.option("--csv", "csv_path", type=click.Path(dir_okay=False), help="Also write the table as CSV.")
+def balance_command(workspace, tree, depth, by, min_lesions, max_share_ratio, plot, measure, csv_path) -> int:
+    """Class balance of WORKSPACE over the taxonomy: every node counts all images beneath it.
+
+    Shows images, distinct lesions and distinct patients per node as an
+    indented tree (an image without a lesion id counts as its own lesion),
+    broken down by --by. Flags nodes below --min-lesions and nodes whose
+    share differs strongly between groups. Run `curate taxonomy` first;
+    --by split needs a split, --by ita_bin needs `curate skin-tone`.
+
+    Exit code 1 means some node is flagged.
+    """
+    from curate.balance import balance, plot_balance, tree_view
+    from curate.taxonomy_workspace import node_frame
+
+    ws = _open_workspace(workspace)
+    taxonomy = _taxonomy_or_input_error(ws, tree)
+    frame = node_frame(ws)
+    if frame["node"].notna().sum() == 0:
+        raise ValueError(f"{workspace}: no image has a taxonomy node yet; run `curate taxonomy` first")
+    if by is not None and frame[by].notna().sum() == 0:
+        hint = {"split": "make a split first", "ita_bin": "run `curate skin-tone` first"}.get(by, "")
+        raise ValueError(f"{workspace}: no image has a {by!r} value; {hint}".rstrip("; "))
+    table = balance(frame, taxonomy, by=by, depth=depth, min_lesions=min_lesions,
+                    max_share_ratio=max_share_ratio)
+    with __import__("pandas").option_context("display.width", 250, "display.max_columns", 60):
+        click.echo(tree_view(table).to_string(index=False))
+    if table.attrs["unmapped_images"]:
+        click.echo(f"({table.attrs['unmapped_images']} images without a node are not counted)")
+    if csv_path:
+        table.to_csv(csv_path, index_label="node")
+        click.echo(f"table written to {csv_path}")
+    if plot:
+        plot_balance(table, measure=measure, min_lesions=min_lesions if measure == "lesions" else None
+                     ).savefig(plot, dpi=100)
+        click.echo(f"plot written to {plot}")
+    flagged = int(table["flags"].astype(bool).sum())
+    click.echo(f"{flagged} node(s) flagged" if flagged else "no node flagged")
+    return EXIT_FINDINGS if flagged else EXIT_OK
+
+
+@command(main, "classes", "Propose training classes from the tree and write the roll-up map.")
+@click.argument("workspace", type=click.Path(file_okay=False, exists=True))
+@click.option("--max-images", required=True, type=click.IntRange(min=1),
+              help="Largest class, in images (a single leaf over it stays one class).")
+@click.option("--min-images", default=0, show_default=True, type=click.IntRange(min=0),
+              help="Merge smaller classes into their parent's class where possible, else report them.")
+@click.option("--out", "out_dir", type=click.Path(file_okay=False),
+              help="Folder for classes.csv, image_classes.csv, rollup_depth<D>.csv/.json "
+                   "(default: WORKSPACE/classes).")
+@click.option("--rollup-depth", "depths", multiple=True, type=click.IntRange(min=0),
+              help="Depth(s) of the coarse nodes to roll classes up to (repeatable; default 1 and 2).")
+@click.option("--tree", type=click.Path(dir_okay=False, exists=True),
+              help="Taxonomy file. Default: the tree last used with `curate taxonomy`.")
+def classes_command(workspace, max_images, min_images, out_dir, depths, tree) -> int:
+    """Partition the taxonomy of WORKSPACE into training classes of at most --max-images images.
+
+    Top-down: a node whose subtree holds at most --max-images images becomes a
+    class, otherwise its children are tried; images labelled at an inner node
+    form the class '<node>:other'. Writes each image's class into the
+    workspace, the class list, and 0/1 roll-up maps (CSV matrix and JSON
+    lists) from classes to the nodes at each --rollup-depth, so a training
+    script can sum class probabilities to coarse nodes.
+
+    Exit code 1 means some class is under --min-images and could not be merged.
+    """
+    from pathlib import Path
+
+    from curate.taxonomy_workspace import node_frame, write_class_files, write_training_classes
+    from curate.training_classes import propose_classes
+
+    ws = _open_workspace(workspace)
+    taxonomy = _taxonomy_or_input_error(ws, tree)
+    frame = node_frame(ws)
+    if frame["node"].notna().sum() == 0:
+        raise ValueError(f"{workspace}: no image has a taxonomy node yet; run `curate taxonomy` first")
+    proposal = propose_classes(frame["node"].value_counts(), taxonomy, max_images=max_images,
+                               min_images=min_images)
+    write_training_classes(ws, proposal)
+    frame["training_class"] = proposal.class_of(frame["node"])
+    out = Path(out_dir) if out_dir else Path(workspace) / "classes"
+    depths = sorted(set(depths)) or [d for d in (1, 2) if d <= taxonomy.max_depth]
+    written = write_class_files(proposal, taxonomy, out, depths=depths,
+                                image_classes=frame[["image_id", "sha256", "node", "training_class"]])
+    click.echo(proposal.to_frame().to_string(index=False))
+    click.echo(f"{len(proposal.trainable())} training classes with images; files in {out}: "
+               + ", ".join(p.name for p in written))
+    if proposal.reported:
+        click.echo(f"under --min-images and not mergeable: {', '.join(proposal.reported)}")
+        return EXIT_FINDINGS
+    return EXIT_OK
+
+
+@command(main, "skin-tone", "Estimate each image's skin tone (ITA) and its bin (stored per SHA-256).")
+@click.argument("workspace", type=click.Path(file_okay=False, exists=True))
+@click.option("--recompute", is_flag=True, help="Recompute files already estimated.")
+@click.option("-q", "--quiet", is_flag=True, help="No progress bar.")
+def skin_tone_command(workspace, recompute, quiet) -> int:
+    """Estimate the Individual Typology Angle of the skin around each lesion in WORKSPACE.
+
+    ITA = arctan((L* - 50) / b*) in degrees, from the median L* and b* of the
+    skin in a border band of a thumbnail (darkest pixels and the black field
+    of dermoscopes left out), binned very_light / light / intermediate / tan /
+    brown / dark (Chardon et al. 1991; Del Bino et al. 2006). A coverage
+    measure for the dataset, not a measurement of a person. Then
+    `curate balance WORKSPACE --by ita_bin`.
+
+    Exit code 1 means some images got no estimate (unreadable or too little skin).
+    """
+    from curate.skin_tone import ITA_BINS
+    from curate.skin_tone_files import estimate_skin_tone
+
+    ws = _open_workspace(workspace)
+    table = estimate_skin_tone(ws, recompute=recompute, progress=not quiet)
+    counts = table["ita_bin"].value_counts()
+    order = [name for name, _ in ITA_BINS]
+    click.echo("skin tone (distinct files): "
+               + ", ".join(f"{name} {int(counts.get(name, 0))}" for name in order))
+    missing = int(table["ita"].isna().sum())
+    if missing:
+        click.echo(f"{missing} file(s) without an estimate")
+        return EXIT_FINDINGS
+    return EXIT_OK
+
+
+# --- groups and splits -------------------------------------------------------------
+
+
+def _comma_list(text):
+    return None if text is None else [part.strip() for part in text.split(",") if part.strip()]
+
+
+@command(main, "groups", "Build leakage groups (patient, lesion, digest, near-duplicates, decisions).")
+@click.argument("workspace", type=click.Path(file_okay=False, exists=True))
+@click.option("--patient-scope", type=click.Choice(["source", "global"]), default="source", show_default=True,
+              help="Patient ids are unique per source, or shared by all sources.")
+@click.option("--lesion-scope", type=click.Choice(["source", "patient", "global"]), default="source",
+              show_default=True, help="Lesion ids are unique per source, per patient, or shared by all sources.")
+@click.option("--link-verdicts", default="exact,near", show_default=True,
+              help="Pair verdicts (table pairs) that join images.")
+@click.option("--max-id-share", type=click.FloatRange(0, 1, min_open=True), default=0.02, show_default=True,
+              help="An id on more than this share of images (and --min-overshared images) joins nothing.")
+@click.option("--min-overshared", type=click.IntRange(min=1), default=100, show_default=True,
+              help="See --max-id-share (a count of images).")
+@click.option("--max-rows", type=click.IntRange(min=0), default=10, show_default=True,
+              help="Largest groups and findings to print.")
+def groups_command(workspace, patient_scope, lesion_scope, link_verdicts, max_id_share, min_overshared,
+                   max_rows) -> int:
+    """Join the images of WORKSPACE into leakage groups and store them (table groups).
+
+    Links: same patient id, same lesion id, same SHA-256, near-duplicate pairs with
+    a verdict in --link-verdicts, and reviewers' same_image / same_lesion decisions;
+    a different_lesions decision removes the near-duplicate link of that pair.
+    Placeholder ids ("unknown", "0", "n/a" ...) and ids covering an implausible
+    share of the images join nothing and are listed.
+
+    Exit code 1 means placeholder ids or contradictions between decisions and
+    metadata were found.
+    """
+    from curate.split_store import build_groups
+    from curate.store import Workspace
+
+    grouping = build_groups(
+        Workspace.open(workspace), patient_scope=patient_scope, lesion_scope=lesion_scope,
+        link_verdicts=tuple(_comma_list(link_verdicts)), max_id_share=max_id_share,
+        min_overshared_images=min_overshared)
+    click.echo(grouping.summary(max_rows))
+    return EXIT_OK if grouping.report.ok else EXIT_FINDINGS
+
+
+@command(main, "split", "Propose a grouped, stratified split (writes table splits).")
+@click.argument("workspace", type=click.Path(file_okay=False, exists=True))
+@click.option("--fractions", default="0.7,0.15,0.15", show_default=True,
+              help="Target share of images per split, summing to 1.")
+@click.option("--names", help="Split names, comma-separated [default: train,validation,test for three].")
+@click.option("--stratify", help="Columns to balance, comma-separated: node, node:DEPTH, training_class, "
+              "source, modality, ita_bin or any catalog column.")
+@click.option("--random-state", "--seed", "random_state", type=int, default=0, show_default=True,
+              help="Breaks ties between groups of equal size; same value, same split.")
+@click.option("--keep", type=click.Path(exists=True),
+              help="A frozen manifest (CSV/Parquet with sha256 or path, and split) whose images must not move.")
+@click.option("--max-rows", type=click.IntRange(min=0), default=20, show_default=True,
+              help="Findings to print.")
+def split_command(workspace, fractions, names, stratify, random_state, keep, max_rows) -> int:
+    """Assign whole leakage groups of WORKSPACE to splits, balancing class shares.
+
+    Groups are built first when table groups does not cover every image. With
+    --keep, images of the manifest stay in their split, and new images that join
+    one of their groups follow them. Classes with fewer groups than splits are
+    reported with where their groups went.
+
+    Exit code 1 means findings: classes too small for every split, new images
+    joining kept groups, or kept groups spanning two splits.
+    """
+    from curate.split_store import split_workspace
+    from curate.store import Workspace
+
+    try:
+        fraction_values = [float(x) for x in _comma_list(fractions)]
+    except ValueError:
+        raise click.BadParameter(f"{fractions!r} is not a comma-separated list of numbers",
+                                 param_hint="--fractions") from None
+    assignment = split_workspace(
+        Workspace.open(workspace), fractions=fraction_values, names=_comma_list(names),
+        stratify=_comma_list(stratify), random_state=random_state, keep=keep)
+    click.echo(assignment.summary(max_rows))
+    return EXIT_OK if assignment.report.ok else EXIT_FINDINGS
