@@ -43,6 +43,18 @@ _EXPORTS: dict[str, str] = {
     "generate_scenario": "curate.demo",
     "Scenario": "curate.demo",
     "run_pipeline": "curate.pipeline",
+    # groups and splits
+    "group_images": "curate.grouping",
+    "Grouping": "curate.grouping",
+    "GroupIssue": "curate.grouping",
+    "is_placeholder_id": "curate.grouping",
+    "BalancedGroupKFold": "curate.splitting",
+    "assign": "curate.splitting",
+    "propose_split": "curate.splitting",
+    "SplitAssignment": "curate.splitting",
+    "SplitIssue": "curate.splitting",
+    "build_groups": "curate.split_store",
+    "split_workspace": "curate.split_store",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]

@@ -133,7 +133,14 @@ def _solve(problem: _Problem, targets, *, random_state, locked_groups=None,
     return assignment
 
 
-def _check_fractions(fractions, names):
+def check_fractions(fractions, names=None) -> tuple[np.ndarray, tuple]:
+    """Validated target fractions (summing to 1) and split names (defaults filled in).
+
+    Examples
+    --------
+    >>> check_fractions([0.8, 0.2])
+    (array([0.8, 0.2]), ('train', 'test'))
+    """
     try:
         f = np.asarray([float(x) for x in fractions], dtype=np.float64)
     except (TypeError, ValueError):
@@ -314,7 +321,7 @@ def assign(y, groups, *, fractions, names=None, random_state=0, locked=None,
     >>> sorted(pd.Series(out).value_counts().items())
     [('test', 4), ('train', 12), ('validation', 4)]
     """
-    targets, names = _check_fractions(fractions, names)
+    targets, names = check_fractions(fractions, names)
     _check_random_state(random_state)
     problem = _build_problem(y, groups)
     locked_groups, _, _ = _lock_groups(problem, locked, names)
@@ -478,7 +485,7 @@ def propose_split(
     >>> sorted(sa.splits.groupby(cat.set_index("image_id")["label"]).value_counts().tolist())
     [2, 2, 4, 4]
     """
-    targets, names = _check_fractions(fractions, names)
+    targets, names = check_fractions(fractions, names)
     _check_random_state(random_state)
     if "image_id" not in catalog.columns:
         raise ValueError("catalog needs an 'image_id' column")
