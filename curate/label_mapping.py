@@ -9,14 +9,18 @@ by :func:`normalise_label`), with columns
                waiting for a person) or ``rejected`` (leave unmapped)
 ``score``      0..1, how sure the assistant was (1 for the user's own rows)
 ``method``     ``user``, ``exact`` (normalised id or name), ``synonym``,
-               ``fuzzy`` or ``none``
+               ``reordered`` (same words, other order), ``fuzzy``,
+               ``initials`` or ``prefix`` (a short code, score 0.5) or ``none``
 ``images``     images carrying the label when the row was last written
 ``variants``   other spellings seen that normalise to the same text
 
 :func:`propose_mappings` suggests a node for every label the file lacks, by
 normalised exact match on node ids and names, then our own synonym and
-abbreviation list (:data:`SYNONYMS`), then fuzzy matching (``difflib`` ratio,
-standard library). :func:`merge_mappings` adds the proposals without touching
+abbreviation list (:data:`SYNONYMS`), the same words in another order,
+abbreviations expanded inside longer labels ("MM nodular"), fuzzy matching
+(``difflib`` ratio, standard library; also on sorted words), and last, for a
+one-word code, the initials or the start of exactly one node name ("VW",
+"ecz"). Ambiguous guesses are left empty. :func:`merge_mappings` adds the proposals without touching
 the user's rows, and :func:`apply_mapping` maps every image, listing the
 labels left unmapped with their counts; nothing is dropped silently.
 
@@ -76,6 +80,8 @@ _SPELLING = {
     "melanomas": "melanoma",
     "bowens": "bowen",
     "bowen's": "bowen",
+    "seb": "seborrhoeic",
+    "ca": "carcinoma",
 }
 
 #: Our own synonym and abbreviation list: normalised text -> node id. Only
@@ -119,6 +125,8 @@ SYNONYMS: dict[str, str] = {
     "atypical naevus": "dysplastic_naevus",
     "clark naevus": "dysplastic_naevus",
     "intradermal naevus": "dermal_naevus",
+    "idn": "dermal_naevus",
+    "dn": "dysplastic_naevus",
     "df": "dermatofibroma",
     "benign fibrous histiocytoma": "dermatofibroma",
     "angioma": "haemangioma",
@@ -185,6 +193,73 @@ def _name_variants(taxonomy: Taxonomy) -> dict[str, str]:
     return out
 
 
+class _Matcher:
+    """Tries the matching rules in order of confidence; see :func:`propose_mappings`."""
+
+    def __init__(self, taxonomy: Taxonomy, *, fuzzy_cutoff: float):
+        self.names = _name_variants(taxonomy)
+        self.synonyms = {normalise_label(k): v for k, v in SYNONYMS.items() if v in taxonomy}
+        # abbreviations (one-word synonyms) expand inside longer labels: "mm nodular"
+        self.expand = {k: normalise_label(taxonomy.name(v)) for k, v in self.synonyms.items() if " " not in k}
+        self.candidates = {**self.synonyms, **self.names}
+        self.by_tokens: dict[str, set[str]] = {}
+        for text, node in self.candidates.items():
+            self.by_tokens.setdefault(_sorted_tokens(text), set()).add(node)
+        self.choices = sorted(set(self.candidates) | set(self.by_tokens))
+        self.initials: dict[str, set[str]] = {}
+        self.first_words: dict[str, set[str]] = {}
+        for text, node in self.names.items():
+            words = text.split()
+            self.initials.setdefault("".join(w[0] for w in words), set()).add(node)
+            self.first_words.setdefault(words[0], set()).add(node)
+        self.fuzzy_cutoff = fuzzy_cutoff
+
+    def _lookup(self, key: str):
+        if key in self.names:
+            return self.names[key], 1.0, "exact"
+        if key in self.synonyms:
+            return self.synonyms[key], 1.0, "synonym"
+        nodes = self.by_tokens.get(_sorted_tokens(key), set())
+        if len(nodes) == 1:  # same words in another order: "naevus, junctional"
+            return next(iter(nodes)), 0.95, "reordered"
+        return None
+
+    def match(self, key: str) -> tuple[str, float, str]:
+        if not key:
+            return "", 0.0, "none"
+        found = self._lookup(key)
+        if found:
+            return found
+        expanded = " ".join(self.expand.get(w, w) for w in key.split())
+        if expanded != key:
+            found = self._lookup(expanded)
+            if found:
+                return found[0], 0.9, "synonym"
+        scored = []  # (ratio, choice) over the label as written, expanded, and with sorted words
+        for probe in dict.fromkeys([key, expanded, _sorted_tokens(key), _sorted_tokens(expanded)]):
+            for best in difflib.get_close_matches(probe, self.choices, n=1, cutoff=self.fuzzy_cutoff):
+                scored.append((difflib.SequenceMatcher(None, probe, best).ratio(), best))
+        if scored:
+            ratio, best = max(scored)
+            nodes = {self.candidates[best]} if best in self.candidates else self.by_tokens[best]
+            if len(nodes) == 1:
+                return next(iter(nodes)), round(ratio, 3), "fuzzy"
+        if " " not in key and key.isalpha():
+            # a clinic's own short code: initials ("vw") or a word's start ("ecz"), if unambiguous
+            nodes = self.initials.get(key, set()) if len(key) >= 2 else set()
+            if len(nodes) == 1:
+                return next(iter(nodes)), 0.5, "initials"
+            if len(key) >= 3:
+                nodes = set().union(*(v for w, v in self.first_words.items() if w.startswith(key)), set())
+                if len(nodes) == 1:
+                    return next(iter(nodes)), 0.5, "prefix"
+        return "", 0.0, "none"
+
+
+def _sorted_tokens(text: str) -> str:
+    return " ".join(sorted(text.split()))
+
+
 def propose_mappings(
     labels: pd.Series,
     taxonomy: Taxonomy,
@@ -225,10 +300,7 @@ def propose_mappings(
     known = known or set()
     frame = pd.DataFrame({"raw": labels.astype("object").where(labels.notna(), "")})
     frame["key"] = frame["raw"].map(normalise_label)
-    names = _name_variants(taxonomy)
-    synonyms = {normalise_label(k): v for k, v in SYNONYMS.items() if v in taxonomy}
-    candidates = {**synonyms, **names}
-    choices = sorted(candidates)
+    matcher = _Matcher(taxonomy, fuzzy_cutoff=fuzzy_cutoff)
     rows = []
     for key, grp in frame.groupby("key", sort=False):
         if key in known:
@@ -236,17 +308,7 @@ def propose_mappings(
         spellings = grp["raw"].value_counts()
         raw = str(spellings.index[0])
         variants = "; ".join(str(v) for v in spellings.index[1:])
-        node, score, method = "", 0.0, "none"
-        if key in names:
-            node, score, method = names[key], 1.0, "exact"
-        elif key in synonyms:
-            node, score, method = synonyms[key], 1.0, "synonym"
-        elif key:
-            best = difflib.get_close_matches(key, choices, n=1, cutoff=fuzzy_cutoff)
-            if best:
-                node = candidates[best[0]]
-                score = round(difflib.SequenceMatcher(None, key, best[0]).ratio(), 3)
-                method = "fuzzy"
+        node, score, method = matcher.match(key)
         rows.append((raw, node, "proposed", score, method, len(grp), variants))
     out = pd.DataFrame(rows, columns=MAPPING_COLUMNS)
     return out.sort_values(["images", "raw_label"], ascending=[False, True], kind="stable").reset_index(drop=True)
