@@ -18,8 +18,10 @@ How an image's ITA is estimated (:func:`estimate_ita`)
 ------------------------------------------------------
 Skin is sampled away from the lesion, which is usually centred: only pixels
 in a band along the image border (``border_fraction`` of the shorter side)
-are used. Pixels with L* below ``min_lightness`` (the black surround outside a
-dermoscope's circular field, deep shadow) are dropped, and then the darkest
+are used, or, when the four corners are dark (a dermoscope's circular field
+of view in a black surround), a ring between 0.6 and 0.85 of the inscribed
+circle's radius. Pixels with L* below ``min_lightness`` (what is left of the
+black surround, deep shadow) are dropped, and then the darkest
 ``dark_fraction`` of what remains (hair, lesion edge, ink marks). The ITA is
 computed from the median L* and the median b* of the remaining pixels, a
 robust estimate against stray pixels. This is a coarse coverage measure for
@@ -43,6 +45,7 @@ __all__ = [
     "srgb_to_lab",
     "ita",
     "ita_bin",
+    "skin_mask",
     "skin_pixels_lab",
     "estimate_ita",
 ]
@@ -147,14 +150,66 @@ def ita_bin(values) -> np.ndarray:
     return out
 
 
+def _dark_corners(lab_l: np.ndarray, min_lightness: float) -> bool:
+    """True when all four corners are dark: the black surround of a dermoscope's circular field."""
+    h, w = lab_l.shape
+    k = max(1, min(h, w) // 20)
+    corners = [lab_l[:k, :k], lab_l[:k, -k:], lab_l[-k:, :k], lab_l[-k:, -k:]]
+    return all(float(np.median(c)) < min_lightness + 5 for c in corners)
+
+
+def skin_mask(
+    shape: tuple[int, int],
+    *,
+    field: str = "band",
+    border_fraction: float = 0.15,
+    ring: tuple[float, float] = (0.6, 0.85),
+) -> np.ndarray:
+    """Boolean mask of where skin is sampled, away from a centred lesion.
+
+    ``field="band"``: a band along the image border, ``border_fraction`` of the
+    shorter side wide. ``field="circle"``: a ring inside the circle inscribed
+    in the image, between ``ring[0]`` and ``ring[1]`` of its radius (for
+    dermoscopy, whose field of view is a circle in a black surround).
+
+    Examples
+    --------
+    >>> int(skin_mask((10, 10), field="band", border_fraction=0.1).sum())
+    36
+    >>> bool(skin_mask((100, 100), field="circle")[50, 50])
+    False
+    """
+    h, w = shape
+    if field == "band":
+        if not 0 < border_fraction <= 0.5:
+            raise ValueError(f"border_fraction must be in (0, 0.5], got {border_fraction!r}")
+        band = max(1, int(round(border_fraction * min(h, w))))
+        mask = np.zeros((h, w), dtype=bool)
+        mask[:band, :] = mask[-band:, :] = True
+        mask[:, :band] = mask[:, -band:] = True
+        return mask
+    if field == "circle":
+        inner, outer = ring
+        if not 0 <= inner < outer <= 1:
+            raise ValueError(f"ring must satisfy 0 <= inner < outer <= 1, got {ring!r}")
+        yy, xx = np.mgrid[0:h, 0:w]
+        r = np.hypot(yy - (h - 1) / 2, xx - (w - 1) / 2) / (min(h, w) / 2)
+        return (r >= inner) & (r <= outer)
+    raise ValueError(f"field must be 'band' or 'circle', got {field!r}")
+
+
 def skin_pixels_lab(
     rgb,
     *,
+    field: str = "auto",
     border_fraction: float = 0.15,
     min_lightness: float = 10.0,
     dark_fraction: float = 0.25,
 ) -> np.ndarray:
     """L*a*b* of the pixels taken as skin (see the module notes), shape (n, 3).
+
+    ``field="auto"`` uses the circular ring when the four corners are dark
+    (a dermoscope's field of view), else the border band; see :func:`skin_mask`.
 
     Examples
     --------
@@ -163,19 +218,15 @@ def skin_pixels_lab(
     >>> skin_pixels_lab(img).shape[1], bool((skin_pixels_lab(img)[:, 0] > 70).all())
     (3, True)
     """
-    if not 0 < border_fraction <= 0.5:
-        raise ValueError(f"border_fraction must be in (0, 0.5], got {border_fraction!r}")
     if not 0 <= dark_fraction < 1:
         raise ValueError(f"dark_fraction must be in [0, 1), got {dark_fraction!r}")
     arr = np.asarray(rgb)
     if arr.ndim != 3 or arr.shape[2] != 3:
         raise ValueError(f"expected an RGB image of shape (height, width, 3), got {arr.shape}")
-    h, w = arr.shape[:2]
-    band = max(1, int(round(border_fraction * min(h, w))))
-    mask = np.zeros((h, w), dtype=bool)
-    mask[:band, :] = mask[-band:, :] = True
-    mask[:, :band] = mask[:, -band:] = True
-    lab = srgb_to_lab(arr[mask])
+    lab_all = srgb_to_lab(arr)
+    if field == "auto":
+        field = "circle" if _dark_corners(lab_all[..., 0], min_lightness) else "band"
+    lab = lab_all[skin_mask(arr.shape[:2], field=field, border_fraction=border_fraction)]
     lab = lab[lab[:, 0] >= min_lightness]
     if len(lab) and dark_fraction > 0:
         cut = np.quantile(lab[:, 0], dark_fraction)
@@ -186,6 +237,7 @@ def skin_pixels_lab(
 def estimate_ita(
     rgb,
     *,
+    field: str = "auto",
     border_fraction: float = 0.15,
     min_lightness: float = 10.0,
     dark_fraction: float = 0.25,
@@ -203,7 +255,7 @@ def estimate_ita(
     >>> round(value, 1), ita_bin(value).tolist()
     (58.7, ['very_light'])
     """
-    lab = skin_pixels_lab(rgb, border_fraction=border_fraction, min_lightness=min_lightness,
+    lab = skin_pixels_lab(rgb, field=field, border_fraction=border_fraction, min_lightness=min_lightness,
                           dark_fraction=dark_fraction)
     if len(lab) < min_pixels:
         return float("nan")
