@@ -77,6 +77,11 @@ _LOSSLESS_FRIENDLY = {"rotate90", "rotate180", "rotate270", "flip_h", "flip_v", 
 
 MIN_IMAGES = 40
 
+#: skin-tone bands by Individual Typology Angle in degrees, dark to very light
+#: (the usual ITA categories: dark < -30 < brown < 10 < tan < 28 < intermediate
+#: < 41 < light < 55 < very light; common practice)
+ITA_BANDS = ((-55.0, -30.0), (-30.0, 10.0), (10.0, 28.0), (28.0, 41.0), (41.0, 55.0), (55.0, 72.0))
+
 # --- the sources -------------------------------------------------------------------
 
 
@@ -247,6 +252,7 @@ class _Planner:
         self.ids: dict[tuple[str, int], str] = {}  # (source, patient index) -> recorded id
         self.lesion_ids: dict[tuple[str, int], str] = {}
         self.seq: dict[str, int] = {s.name: 0 for s in SOURCES}
+        self.ita_bins: list[int] = []
         self.lesion_count: dict[tuple, int] = {}  # (source,) and (source, patient) -> lesions named
 
     # -- overall -----------------------------------------------------------------
@@ -307,7 +313,10 @@ class _Planner:
         if lookalike_of is not None:  # a look-alike lesion on the same kind of skin
             ita, skin = lookalike_of["patient"]["ita"], lookalike_of["patient"]["skin"]
         else:
-            ita = float(rng.uniform(-55.0, 72.0))  # very dark to very light (ITA, degrees)
+            if not self.ita_bins:  # each run of six patients covers every skin-tone band
+                self.ita_bins = [int(i) for i in rng.permutation(len(ITA_BANDS))]
+            low, high = ITA_BANDS[self.ita_bins.pop()]
+            ita = float(rng.uniform(low, high))
             skin = skin_lab(ita, float(rng.uniform(11.0, 20.0)), float(rng.uniform(5.0, 13.0)))
         patient = {
             "index": len(self.patients),
