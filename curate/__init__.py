@@ -55,6 +55,20 @@ _EXPORTS: dict[str, str] = {
     "SplitIssue": "curate.splitting",
     "build_groups": "curate.split_store",
     "split_workspace": "curate.split_store",
+    # leakage check and frozen manifests
+    "check_leakage": "curate.leakage_check",
+    "find_leaks": "curate.leakage",
+    "LeakageReport": "curate.leakage",
+    "read_manifest": "curate.manifest_io",
+    "load_manifest": "curate.manifest_io",
+    "write_manifest": "curate.manifest_io",
+    "verify_manifest": "curate.manifest_io",
+    "Manifest": "curate.manifest",
+    "ManifestCheck": "curate.manifest",
+    "ManifestIssue": "curate.manifest",
+    "freeze_split": "curate.freeze",
+    "FrozenManifest": "curate.freeze",
+    "pseudonym": "curate.pseudonyms",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]
