@@ -338,8 +338,12 @@ def demo_command(out, n_images, random_state, workers, quiet) -> int:
     from curate.demo import generate_scenario
     from curate.pipeline import run_pipeline
 
-    scenario = generate_scenario(out, n_images=n_images, random_state=random_state,
-                                 progress=not quiet, workers=workers)
+    try:
+        scenario = generate_scenario(out, n_images=n_images, random_state=random_state,
+                                     progress=not quiet, workers=workers)
+    except FileExistsError as exc:  # a folder that is not an earlier demo: nothing was touched
+        click.echo(f"error: {exc}", err=True)
+        return EXIT_INPUT
     click.echo(scenario.summary())
     run_pipeline(out, progress=not quiet, echo=click.echo)
     return EXIT_OK
