@@ -96,7 +96,9 @@ def walk_images(root, *, extensions=IMAGE_EXTENSIONS) -> Iterator[FileEntry | Fi
                     visited.add(key)
                     subfolders.append((entry.path, ancestors | {key}))
                 continue
-            wanted = os.path.splitext(entry.name)[1].lower() in extensions
+            name = entry.name
+            dot = name.rfind(".")
+            wanted = dot > 0 and name[dot:].lower() in extensions
             if not wanted and not entry.is_symlink():
                 continue
             try:

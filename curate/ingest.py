@@ -268,61 +268,54 @@ def _scan(ws, source, root, entries, meta_rows, findings, progress, started) -> 
 
     result = ScanResult(source=source, root=root, files_seen=len(entries))
     now = utc_now()
+    with_meta = meta_rows is not None
     known = _known_rows(ws)
-    to_read, changed = [], []
+    to_read, reused = [], []
     for entry in entries:
         old = known.get(entry.path)
-        if old is not None and old["sha256"] is not None and (old["size"], old["mtime_ns"]) == (
-            entry.size,
-            entry.mtime_ns,
-        ):
-            continue
-        to_read.append(entry)
-        if old is not None:
-            changed.append(entry.path)
-    result.redigested, result.new = len(changed), len(to_read) - len(changed)
-    result.reused = len(entries) - len(to_read)
+        # old: (image_id, size, mtime_ns, has digest, present, source, root, *metadata)
+        if old is None or not old[3] or old[1] != entry.size or old[2] != entry.mtime_ns:
+            to_read.append(entry)
+        else:
+            reused.append((entry, old))
+    result.reused = len(reused)
+    result.redigested = sum(1 for e in to_read if e.path in known)
+    result.new = len(to_read) - result.redigested
 
     read = {}
     batch = []
     for entry in _progress(to_read, progress, desc=f"reading {source}", unit=" files"):
-        facts = file_probe.probe_file(entry.path, entry.size)
-        read[entry.path] = facts
+        facts = read[entry.path] = file_probe.probe_file(entry.path, entry.size)
         batch.append(_row(entry, facts, root, source, meta_rows))
         if len(batch) >= BATCH_SIZE:
-            _write_rows(ws, batch, meta_rows is not None, now)
+            _write_rows(ws, batch, with_meta, now)
             batch = []
-    _write_rows(ws, batch, meta_rows is not None, now)
+    _write_rows(ws, batch, with_meta, now)
 
     updates = []
-    for entry in entries:
-        if entry.path in read:
-            continue
-        old = known[entry.path]
-        row = _row(entry, old, root, source, meta_rows)
-        if any(old[c] != v for c, v in zip(_ROW_COLUMNS, row)) or not old["present"] or (
-            meta_rows is not None and _meta_values(meta_rows, entry.path) != tuple(old[c] for c in META_COLUMNS)
-        ):
-            updates.append(row)
+    for entry, old in reused:
+        meta = _meta_values(meta_rows, entry.path) if with_meta else ()
+        if not old[4] or old[5] != source or old[6] != root or (with_meta and meta != old[7:]):
+            updates.append((root, source, now) + meta + (old[0],))
 
+    stored_issues = _stored_issues(ws) if reused else {}
     for entry in entries:
         facts = read.get(entry.path)
         issue, message = (
-            (facts.issue, facts.message) if facts is not None
-            else (known[entry.path]["scan_issue"], known[entry.path]["scan_message"])
+            (facts.issue, facts.message) if facts is not None else stored_issues.get(entry.path, (None, None))
         )
         if issue:
-            findings.append(Finding(CHECK, IngestIssue(issue), message, file=entry.path))
+            findings.append(Finding(CHECK, IngestIssue(issue), message or "", file=entry.path))
 
     seen = {e.path for e in entries}
-    gone = [
-        (old["image_id"],)
-        for path, old in known.items()
-        if old["source"] == source and old["present"] and path not in seen
-    ]
+    gone = [(old[0],) for path, old in known.items() if old[5] == source and old[4] and path not in seen]
     result.gone = len(gone)
+    meta_set = "".join(f", {c} = ?" for c in META_COLUMNS) if with_meta else ""
     with ws.transaction() as con:
-        _upsert(con, updates, meta_rows is not None, now)
+        con.executemany(
+            f"UPDATE images SET root = ?, source = ?, present = 1, last_seen = ?{meta_set} WHERE image_id = ?",
+            updates,
+        )
         con.executemany("UPDATE images SET present = 0 WHERE image_id = ?", gone)
         con.execute("UPDATE images SET last_seen = ? WHERE source = ? AND present = 1", (now, source))
         con.execute("DELETE FROM problems WHERE step = ? AND source = ?", (CHECK, source))
@@ -381,12 +374,25 @@ def _at_row(f: Finding, csv_path: str, row: MetadataRow) -> Finding:
     return Finding(f.check, f.reason, f"{row.path!r}: {f.message}", file=csv_path, row=row.row)
 
 
-def _known_rows(ws) -> dict[str, dict]:
-    columns = ("image_id", "present") + _ROW_COLUMNS + META_COLUMNS
+def _known_rows(ws) -> dict[str, tuple]:
+    """path -> (image_id, size, mtime_ns, has digest, present, source, root, *metadata)."""
     con = ws.connect()
     try:
-        cur = con.execute(f"SELECT {', '.join(columns)} FROM images")
-        return {r[2]: dict(zip(columns, r)) for r in cur}
+        cur = con.execute(
+            "SELECT path, image_id, size, mtime_ns, sha256 IS NOT NULL, present, source, root, "
+            f"{', '.join(META_COLUMNS)} FROM images"
+        )
+        return {r[0]: r[1:] for r in cur}
+    finally:
+        con.close()
+
+
+def _stored_issues(ws) -> dict[str, tuple]:
+    """path -> (scan_issue, scan_message) of files whose last reading found a problem."""
+    con = ws.connect()
+    try:
+        cur = con.execute("SELECT path, scan_issue, scan_message FROM images WHERE scan_issue IS NOT NULL")
+        return {r[0]: r[1:] for r in cur}
     finally:
         con.close()
 
@@ -396,21 +402,14 @@ def _meta_values(meta_rows, path) -> tuple:
     return tuple(row.values[c] for c in META_COLUMNS) if row else (None,) * len(META_COLUMNS)
 
 
-def _row(entry: FileEntry, facts, root, source, meta_rows) -> tuple:
+def _row(entry: FileEntry, facts: file_probe.FileFacts, root, source, meta_rows) -> tuple:
     """One catalog row (``_ROW_COLUMNS`` then, with metadata, ``META_COLUMNS``)."""
-    get = facts.get if isinstance(facts, dict) else lambda c: _fact(facts, c)
-    base = (entry.path, root, source, entry.size, entry.mtime_ns) + tuple(get(c) for c in FACT_COLUMNS)
+    base = (
+        entry.path, root, source, entry.size, entry.mtime_ns, facts.sha256, facts.width, facts.height,
+        facts.mode, facts.format, int(facts.decodable), facts.issue.value if facts.issue else None,
+        facts.message or None,
+    )
     return base + (_meta_values(meta_rows, entry.path) if meta_rows is not None else ())
-
-
-def _fact(facts: file_probe.FileFacts, column: str):
-    if column == "decodable":
-        return int(facts.decodable)
-    if column == "scan_issue":
-        return facts.issue.value if facts.issue else None
-    if column == "scan_message":
-        return facts.message or None
-    return getattr(facts, column)
 
 
 def _write_rows(ws, rows, with_metadata, now) -> None:
