@@ -165,11 +165,12 @@ def _split_table_columns(text: str | None) -> dict[str, str]:
 @click.option("--no-near-duplicates", is_flag=True, help="Skip hashing and the near-duplicate search.")
 @click.option("--columns", help="Column names when they differ, e.g. path=file,split=fold,patient=pid.")
 @click.option("--ignore-id", multiple=True, help="A placeholder patient/lesion id that links nothing (repeatable).")
+@click.option("--workers", type=click.IntRange(1), default=None, help="Processes for hashing (default: one per core).")
 @click.option("--max-rows", type=click.IntRange(0), default=20, show_default=True,
               help="Leaks listed in the printed summary.")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bars.")
 def check_command(manifest, root, radius, json_path, cache, no_cache, no_near_duplicates, columns,
-                  ignore_id, max_rows, quiet) -> int:
+                  ignore_id, workers, max_rows, quiet) -> int:
     """Check MANIFEST for leakage between its splits; needs no workspace.
 
     MANIFEST is a CSV/TSV or Parquet table with a path column and a split
@@ -188,7 +189,8 @@ def check_command(manifest, root, radius, json_path, cache, no_cache, no_near_du
     report = check_leakage(
         manifest, root=root, columns=_split_table_columns(columns),
         near_duplicates=not no_near_duplicates, radius=radius,
-        cache=False if no_cache else cache, ignore_ids=ignore_id, progress=not quiet,
+        cache=False if no_cache else cache, ignore_ids=ignore_id, workers=workers,
+        progress=not quiet,
     )
     _write_json(json_path, report.to_json())
     click.echo(report.summary(max_rows=max_rows), err=json_path == "-")

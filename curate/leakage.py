@@ -418,7 +418,7 @@ def _pair_leaks(t: pd.DataFrame, pairs: pd.DataFrame, order: list[str]) -> pd.Da
     swap = p["split_a"].map(rank) > p["split_b"].map(rank)
     for a, b in (("path_a", "path_b"), ("split_a", "split_b")):
         p.loc[swap, [a, b]] = p.loc[swap, [b, a]].to_numpy()
-    extra = [c for c in p.columns if c not in ("path_a", "path_b", "split_a", "split_b")]
+    extra = [c for c in p.columns if c not in ("path_a", "path_b", "split_a", "split_b", "distance")]
     evidence = []
     for row in p[extra].to_dict("records"):
         evidence.append({k: v for k, v in row.items() if not _missing(v)})

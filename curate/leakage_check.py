@@ -29,6 +29,9 @@ from curate.manifest_table import standard_columns
 
 #: environment variable naming the default hash-cache folder
 CACHE_ENV = "CURATE_CACHE_DIR"
+#: verdicts of the near-duplicate engine that count as a leak (``exact`` ones are
+#: found on the digests; ``possible`` pairs need a person's look, not a verdict)
+NEAR_VERDICTS = ("near",)
 
 
 def default_cache_dir() -> Path:
@@ -54,6 +57,7 @@ def check_leakage(
     ignore_ids: Iterable[str] = (),
     patient_scope: str | None = None,
     lesion_scope: str | None = None,
+    workers: int | None = None,
     progress: bool = True,
 ) -> LeakageReport:
     """Every cross-split leak in a manifest: shared files, near-duplicates, patients, lesions.
@@ -84,6 +88,8 @@ def check_leakage(
     patient_scope, lesion_scope : str, optional
         See :func:`curate.leakage.find_leaks`. Default: the scopes a frozen
         manifest's sidecar records, else ``"global"`` (one id space).
+    workers : int, optional
+        Processes for hashing; default one per core.
     progress : bool
         Show progress bars.
 
@@ -126,9 +132,19 @@ def check_leakage(
     problems = files.loc[files["problem"].notna(), ["path", "problem", "message"]].rename(
         columns={"problem": "reason"}
     )
+    pairs = None
+    if near_duplicates:
+        pairs, unhashable = near_duplicate_pairs(
+            table, base, radius=radius, cache=cache, workers=workers, progress=progress
+        )
+        problems = pd.concat([problems, unhashable], ignore_index=True)
     parameters = {"root": str(base), "near_duplicates": bool(near_duplicates)}
+    if near_duplicates:
+        parameters.update(radius=pairs.attrs["radius"], verdicts=list(NEAR_VERDICTS),
+                          cache=pairs.attrs["cache"])
     return find_leaks(
         table,
+        pairs=pairs,
         problems=problems,
         ignore_ids=ignore_ids,
         patient_scope=patient_scope or "global",
@@ -136,3 +152,60 @@ def check_leakage(
         source=source,
         parameters=parameters,
     )
+
+
+def near_duplicate_pairs(
+    table: pd.DataFrame,
+    base: Path,
+    *,
+    radius: int | None = None,
+    cache=None,
+    workers: int | None = None,
+    progress: bool = True,
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Hash the table's readable files and return near-duplicate pairs by path, plus unhashable files.
+
+    Returns
+    -------
+    pairs : DataFrame
+        ``path_a``, ``path_b`` (as in the table), ``distance`` (DCT hash bits,
+        best orientation) and the engine's other columns as evidence; only
+        pairs with a verdict in :data:`NEAR_VERDICTS`.
+    unhashable : DataFrame
+        ``path``, ``reason`` (``unreadable_file``), ``message``: files whose
+        bytes were read but which could not be decoded as images.
+    """
+    from curate.hash_files import hash_files
+    from curate.near_duplicates import DEFAULT_RADIUS, score_pairs
+    from curate.report import LeakReason
+    from curate.store import Workspace
+
+    radius = DEFAULT_RADIUS if radius is None else int(radius)
+    if not 0 <= radius <= 64:
+        raise ValueError(f"radius must be between 0 and 64 bits, got {radius}")
+    ws = None
+    if cache is not False:
+        ws = Workspace.create(default_cache_dir() if cache is None else cache)
+    readable = table[table["sha256"].notna()].reset_index(drop=True)
+    absolute = [os.path.abspath(p) for p in absolute_paths(readable["path"], base)]
+    hashes = hash_files(absolute, workspace=ws, workers=workers, progress=progress)
+    report = hashes.attrs["report"]
+    table_path = dict(zip(absolute, readable["path"]))
+    unhashable = pd.DataFrame(
+        [(table_path.get(f.file, f.file), LeakReason.UNREADABLE_FILE.value,
+          f"not readable as an image ({f.as_dict()['reason']}): {f.message}") for f in report],
+        columns=["path", "reason", "message"],
+    )
+    hashed = readable[readable["sha256"].isin(set(hashes["sha256"]))].reset_index(drop=True)
+    catalog = pd.DataFrame({"image_id": range(len(hashed)), "sha256": hashed["sha256"]})
+    codes = hashes.drop(columns=["path"]).drop_duplicates("sha256")
+    scored = score_pairs(catalog, codes, radius=radius, workers=workers)
+    scored = scored[scored["verdict"].isin(NEAR_VERDICTS)]
+    path = hashed["path"]
+    pairs = scored.drop(columns=["image_a", "image_b", "conflict"]).assign(
+        path_a=path.to_numpy()[scored["image_a"].to_numpy()],
+        path_b=path.to_numpy()[scored["image_b"].to_numpy()],
+        distance=scored["d_phash"].to_numpy(),
+    )
+    pairs.attrs.update(radius=radius, cache=None if ws is None else str(ws.path))
+    return pairs.reset_index(drop=True), unhashable

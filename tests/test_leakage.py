@@ -289,3 +289,55 @@ def test_leakage_never_imports_the_splitter():
     code = "import sys, curate.leakage, curate.leakage_check; print('curate.splitting' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+# --- near-duplicates (hashing + radius search) --------------------------------------------
+
+
+def test_flipped_and_resized_copy_in_another_split_is_a_near_duplicate(tmp_path):
+    from PIL import Image
+
+    data = tmp_path / "data"
+    split_tree(data, {"train": [1, 2, 3, 4], "test": [5, 6]})
+    original = Image.open(data / "train/img1.png")
+    # Pillow's transpose/resize make the planted copy (a mirrored, smaller JPEG of train/img1.png)
+    original.transpose(Image.Transpose.FLIP_LEFT_RIGHT).resize((48, 48)).save(
+        data / "test" / "mirrored.jpg", quality=90)
+    cache = tmp_path / "cache"
+    r = check_leakage(data, cache=cache, workers=1, progress=False)
+    assert r.counts() == {"near_duplicate": 1}
+    f = r.to_frame()
+    assert (f["path_a"][0], f["path_b"][0]) == ("train/img1.png", "test/mirrored.jpg")
+    assert f["distance"][0] <= r.parameters["radius"]
+    assert f["evidence"][0]["orientation"] != 0  # found under a flip, not as stored
+    # the cache is a workspace whose hashes table now holds every image's codes
+    from curate.store import Workspace
+
+    assert len(Workspace.open(cache).read_sql("SELECT sha256 FROM hashes")) == 7
+    again = check_leakage(data, cache=cache, workers=1, progress=False)
+    assert again.to_frame()["path_b"].tolist() == ["test/mirrored.jpg"]
+
+
+def test_near_duplicates_inside_one_split_are_not_leaks_and_a_non_image_is_unreadable(tmp_path):
+    from PIL import Image
+
+    split_tree(tmp_path, {"train": [1, 2], "test": [3]})
+    Image.open(tmp_path / "train/img1.png").resize((40, 40)).save(tmp_path / "train/small.png")
+    (tmp_path / "test" / "notes.png").write_bytes(b"this is text, not a PNG")
+    r = check_leakage(tmp_path, cache=False, workers=1, progress=False)
+    assert r.counts() == {"unreadable_file": 1}
+    assert r.to_frame()["path_a"][0] == "test/notes.png"
+
+
+def test_cli_check_with_near_duplicates_and_a_cache(tmp_path):
+    from PIL import Image
+
+    data = tmp_path / "data"
+    split_tree(data, {"train": [1, 2], "val": [3]})
+    Image.open(data / "train/img2.png").rotate(90).save(data / "val/turned.png")
+    out = tmp_path / "r.json"
+    result = run("check", data, "--cache", tmp_path / "cache", "--workers", "1", "-q", "--json", out)
+    assert result.exit_code == 1, result.output
+    leak = json.loads(out.read_text())["leaks"][0]
+    assert (leak["kind"], leak["path_a"], leak["path_b"]) == ("near_duplicate", "train/img2.png", "val/turned.png")
+    assert run("check", data, "--radius", "99").exit_code == 2
