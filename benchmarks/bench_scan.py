@@ -76,9 +76,9 @@ def write_files(root: Path, n: int, size: int) -> None:
         (folder / f"img_{i:07d}.jpg").write_bytes(with_comment(base[i % len(base)], b"file %d" % i))
 
 
-def timed_scan(ws, root, source, progress):
+def timed_scan(ws, root, source, progress, workers=None):
     t = time.perf_counter()
-    result = scan_folder(ws, root, source=source, progress=progress)
+    result = scan_folder(ws, root, source=source, progress=progress, workers=workers)
     return result, time.perf_counter() - t
 
 
@@ -100,6 +100,9 @@ def main(argv=None) -> int:
     ap.add_argument("--image-scale", type=float, default=0.25, help="demo picture scale (with --demo)")
     ap.add_argument("--keep", type=Path, default=None, help="work in this folder and keep it")
     ap.add_argument("--progress", action="store_true", help="show progress bars")
+    ap.add_argument("--workers", type=int, default=None, help="reading threads (default: min(2, cpus))")
+    ap.add_argument("--compare-workers", action="store_true",
+                    help="also time a first scan with 1 thread, into a second workspace")
     args = ap.parse_args(argv)
     n = args.files or (2000 if args.quick else 20000)
 
@@ -122,8 +125,8 @@ def main(argv=None) -> int:
         print(f"{n_files} files ({kind}) written in {made:.1f} s under {root}")
 
         ws = Workspace.create(work / "ws")
-        first, t_first = timed_scan(ws, root, "bench", args.progress)
-        again, t_again = timed_scan(ws, root, "bench", args.progress)
+        first, t_first = timed_scan(ws, root, "bench", args.progress, args.workers)
+        again, t_again = timed_scan(ws, root, "bench", args.progress, args.workers)
         changed = touch_some(root, 0.01)
         partly, t_partly = timed_scan(ws, root, "bench", args.progress)
 
@@ -133,6 +136,10 @@ def main(argv=None) -> int:
         print(f"first scan      : {rate(first.files_seen, t_first)}  read {first.new}")
         print(f"re-scan, same   : {rate(again.files_seen, t_again)}  reused {again.reused}, read {again.new + again.redigested}")
         print(f"re-scan, 1% new : {rate(partly.files_seen, t_partly)}  re-read {partly.redigested} of {changed} changed")
+        if args.compare_workers:
+            _, t_single = timed_scan(Workspace.create(work / "ws1"), root, "bench", args.progress, 1)
+            print(f"first scan, 1 thread: {rate(first.files_seen, t_single)}  "
+                  f"(threads speed-up {t_single / t_first:.2f}x)")
         print(f"ratio first / re-scan (same tree): {t_first / t_again:.1f}x (target >= 20x)")
         print(f"ratio first / re-scan (1% changed): {t_first / t_partly:.1f}x")
         print(f"problems found: {first.report.counts() or 'none'}; "

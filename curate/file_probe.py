@@ -22,6 +22,7 @@ Width and height are the stored pixel size; an EXIF orientation tag is not appli
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import warnings
 from dataclasses import dataclass
@@ -88,22 +89,25 @@ def image_facts(path) -> FileFacts:
     >>> (f.width, f.height, f.mode, f.format, f.decodable, f.issue)
     (7, 5, 'RGB', 'PNG', True, None)
     """
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", Image.DecompressionBombWarning)
-        try:
-            img = Image.open(path)
-        except Image.DecompressionBombError as exc:
-            return _bomb(str(exc))
-        except UnidentifiedImageError:
-            return FileFacts(issue=IngestIssue.NOT_AN_IMAGE, message="Pillow does not recognise it as an image")
-        except PermissionError as exc:
-            return FileFacts(issue=IngestIssue.PERMISSION_DENIED, message=str(exc))
-        except (OSError, SyntaxError, ValueError) as exc:
-            return FileFacts(issue=IngestIssue.TRUNCATED, message=f"corrupt image header: {exc}")
-    bombs = [w for w in caught if issubclass(w.category, Image.DecompressionBombWarning)]
-    if bombs:
+    try:
+        img = Image.open(path)
+    except Image.DecompressionBombError as exc:
+        return _bomb(str(exc))
+    except UnidentifiedImageError:
+        return FileFacts(issue=IngestIssue.NOT_AN_IMAGE, message="Pillow does not recognise it as an image")
+    except PermissionError as exc:
+        return FileFacts(issue=IngestIssue.PERMISSION_DENIED, message=str(exc))
+    except (OSError, SyntaxError, ValueError) as exc:
+        return FileFacts(issue=IngestIssue.TRUNCATED, message=f"corrupt image header: {exc}")
+    limit = Image.MAX_IMAGE_PIXELS
+    if limit is not None and img.width * img.height > limit:
+        # the same test as Pillow's DecompressionBombWarning, made here so it does not
+        # depend on the process-wide warning filters (not thread-safe)
         with img:
-            return _bomb(str(bombs[0].message), width=img.width, height=img.height, mode=img.mode, format=img.format)
+            return _bomb(
+                f"{img.width} x {img.height} = {img.width * img.height} pixels",
+                width=img.width, height=img.height, mode=img.mode, format=img.format,
+            )
     with img:
         facts = dict(width=img.width, height=img.height, mode=img.mode, format=img.format)
         try:
@@ -137,6 +141,18 @@ def probe_file(path, size: int) -> FileFacts:
         return FileFacts(issue=IngestIssue.READ_ERROR, message=f"cannot read: {exc}")
     facts = image_facts(path)
     return FileFacts(**{**facts.__dict__, "sha256": sha})
+
+
+@contextlib.contextmanager
+def bomb_warnings_silenced():
+    """Silence Pillow's DecompressionBombWarning (probe_file reports those images itself).
+
+    Changes the process-wide warning filters: enter it once, in the main
+    thread, around a whole batch of probes.
+    """
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", Image.DecompressionBombWarning)
+        yield
 
 
 def _check_pixels(img: Image.Image) -> None:

@@ -109,7 +109,9 @@ class ScanResult:
         )
 
 
-def scan_folder(ws, root, *, source=None, metadata=None, columns=None, progress=True) -> ScanResult:
+def scan_folder(
+    ws, root, *, source=None, metadata=None, columns=None, progress=True, workers=None
+) -> ScanResult:
     """Walk ``root`` for image files and take them into the workspace catalog.
 
     Parameters
@@ -125,6 +127,9 @@ def scan_folder(ws, root, *, source=None, metadata=None, columns=None, progress=
         Our field -> CSV column, see :func:`curate.metadata.parse_columns`.
     progress : bool
         Show progress bars (tqdm, on stderr).
+    workers : int, optional
+        Threads reading files (hashing and Pillow decoding release the GIL);
+        default ``min(2, cpu count)``. The result does not depend on it.
 
     Returns
     -------
@@ -153,6 +158,7 @@ def scan_folder(ws, root, *, source=None, metadata=None, columns=None, progress=
     >>> scan_folder(ws, d, source="clinic", progress=False).reused
     3
     """
+    workers = _check_workers(workers)
     root = os.path.abspath(os.fspath(root))
     if not os.path.isdir(root):
         raise (NotADirectoryError if os.path.exists(root) else FileNotFoundError)(
@@ -169,10 +175,12 @@ def scan_folder(ws, root, *, source=None, metadata=None, columns=None, progress=
     if meta_rows is not None:
         walked = {e.path for e in entries}
         findings.extend(_unmatched_rows(meta_rows, walked, str(metadata)))
-    return _scan(ws, source, root, entries, meta_rows, findings, progress, started)
+    return _scan(ws, source, root, entries, meta_rows, findings, progress, started, workers)
 
 
-def scan_metadata(ws, csv_path, *, source, columns=None, root=None, progress=True) -> ScanResult:
+def scan_metadata(
+    ws, csv_path, *, source, columns=None, root=None, progress=True, workers=None
+) -> ScanResult:
     """Take the files a metadata CSV lists into the catalog, without walking a folder.
 
     Parameters
@@ -188,6 +196,9 @@ def scan_metadata(ws, csv_path, *, source, columns=None, root=None, progress=Tru
         Folder that relative paths start from, and that every path must lie
         under; defaults to the CSV's folder.
     progress : bool
+        Show progress bars (tqdm, on stderr).
+    workers : int, optional
+        Threads reading files; default ``min(2, cpu count)``.
 
     Returns
     -------
@@ -210,6 +221,7 @@ def scan_metadata(ws, csv_path, *, source, columns=None, root=None, progress=Tru
     """
     if not source:
         raise ValueError("source must be a non-empty name")
+    workers = _check_workers(workers)
     csv_path = os.path.abspath(os.fspath(csv_path))
     root = os.path.abspath(os.fspath(root)) if root is not None else os.path.dirname(csv_path)
     started = time.perf_counter()
@@ -221,7 +233,7 @@ def scan_metadata(ws, csv_path, *, source, columns=None, root=None, progress=Tru
             entries.append(item)
         else:
             findings.append(_at_row(item, csv_path, row))
-    return _scan(ws, source, root, entries, meta_rows, findings, progress, started)
+    return _scan(ws, source, root, entries, meta_rows, findings, progress, started, workers)
 
 
 def exact_duplicates(catalog) -> pd.DataFrame:
@@ -263,7 +275,7 @@ def exact_duplicates(catalog) -> pd.DataFrame:
 # --- the shared core ---------------------------------------------------------------
 
 
-def _scan(ws, source, root, entries, meta_rows, findings, progress, started) -> ScanResult:
+def _scan(ws, source, root, entries, meta_rows, findings, progress, started, workers) -> ScanResult:
     from curate.store import record_problems, utc_now
 
     result = ScanResult(source=source, root=root, files_seen=len(entries))
@@ -284,8 +296,9 @@ def _scan(ws, source, root, entries, meta_rows, findings, progress, started) -> 
 
     read = {}
     batch = []
-    for entry in _progress(to_read, progress, desc=f"reading {source}", unit=" files"):
-        facts = read[entry.path] = file_probe.probe_file(entry.path, entry.size)
+    probed = _probe_all(to_read, workers)
+    for entry, facts in _progress(probed, progress, total=len(to_read), desc=f"reading {source}", unit=" files"):
+        read[entry.path] = facts
         batch.append(_row(entry, facts, root, source, meta_rows))
         if len(batch) >= BATCH_SIZE:
             _write_rows(ws, batch, with_meta, now)
@@ -429,6 +442,27 @@ def _upsert(con, rows, with_metadata, now) -> None:
         f"ON CONFLICT(path) DO UPDATE SET {updates}, present = 1, last_seen = excluded.last_seen",
         [row + (now, now) for row in rows],
     )
+
+
+def _check_workers(workers) -> int:
+    if workers is None:
+        return max(1, min(2, os.cpu_count() or 1))
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise ValueError(f"workers must be a positive int or None, got {workers!r}")
+    return workers
+
+
+def _probe_all(entries, workers):
+    """Yield ``(entry, facts)`` in order, reading files in ``workers`` threads."""
+    with file_probe.bomb_warnings_silenced():
+        if workers == 1 or len(entries) < 2:
+            for entry in entries:
+                yield entry, file_probe.probe_file(entry.path, entry.size)
+            return
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(workers, thread_name_prefix="curate-scan") as pool:
+            yield from zip(entries, pool.map(lambda e: file_probe.probe_file(e.path, e.size), entries))
 
 
 def _progress(iterable, enabled, **kwargs):

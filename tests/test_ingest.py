@@ -248,3 +248,20 @@ def test_chunked_digest_matches_whole_file_digest(tmp_path):
     assert file_probe.file_sha256(tmp_path / "blob", chunk_size=1000) == hashlib.sha256(data).hexdigest()
     with pytest.raises(ValueError, match="chunk_size"):
         file_probe.file_sha256(tmp_path / "blob", chunk_size=0)
+
+
+def test_threads_give_the_same_catalog_as_one_reader(tmp_path):
+    folder = make_good_tree(tmp_path / "data")
+    make_bad_files(folder / "bad")
+    frames = []
+    for workers in (1, 3):
+        ws = Workspace.create(tmp_path / f"ws{workers}")
+        result = scan_folder(ws, folder, progress=False, workers=workers)
+        frames.append((result.report.to_frame(), ws.catalog().drop(columns=["first_seen", "last_seen"])))
+    assert frames[0][0].equals(frames[1][0]) and frames[0][1].equals(frames[1][1])
+
+
+@pytest.mark.parametrize("workers", [0, -1, 1.5, True])
+def test_bad_worker_counts_are_refused(ws, tmp_path, workers):
+    with pytest.raises(ValueError, match="workers"):
+        scan_folder(ws, tmp_path, progress=False, workers=workers)
