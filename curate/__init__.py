@@ -30,6 +30,13 @@ _EXPORTS: dict[str, str] = {
     "LeakageError": "curate.errors",
     "TaxonomyError": "curate.errors",
     "WorkspaceError": "curate.errors",
+    # ingest
+    "scan_folder": "curate.ingest",
+    "scan_metadata": "curate.ingest",
+    "ScanResult": "curate.ingest",
+    "exact_duplicates": "curate.ingest",
+    "parse_columns": "curate.metadata",
+    "file_sha256": "curate.file_probe",
     # review (ipywidgets is imported only when a widget is built; the function
     # `review` stays in curate.review because the submodule has that name)
     "ReviewSession": "curate.review_queue",
