@@ -328,7 +328,8 @@ def wavelet_hash(
         coeffs[0] *= 0
         pixels = pywt.waverec2(coeffs, "haar")
     low = pywt.wavedec2(pixels, mode, level=dwt_level)[0]
-    return PerceptualHash("whash", hash_size * hash_size, _bits_to_int(low > np.median(low)))
+    # with db4 the low band is wider than hash_size (boundary padding), as in imagehash
+    return PerceptualHash("whash", int(low.size), _bits_to_int(low > np.median(low)))
 
 
 #: Hue bin of each 8-bit hue value: the bins of ``numpy.linspace(0, 255, 7)`` (last one closed).
