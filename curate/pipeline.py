@@ -39,6 +39,8 @@ class PipelineContext:
     progress: bool
     echo: Callable[[str], None]
     results: dict = field(default_factory=dict)
+    taxonomy: object = None  # set by the taxonomy step
+    leak_free: bool | None = None  # set by the check step
 
 
 @dataclass(frozen=True)
@@ -134,8 +136,121 @@ def scan_sources(ctx: PipelineContext) -> dict:
     }
 
 
+def hash_images(ctx: PipelineContext) -> dict:
+    """Perceptual hashes of every decodable image (cached per SHA-256 in the workspace)."""
+    from curate.hash_files import hash_workspace
+
+    run = hash_workspace(ctx.workspace, progress=ctx.progress)
+    return {"hashed": run.hashed, "cached": run.cached, "failed": run.failed}
+
+
+def find_duplicate_pairs(ctx: PipelineContext) -> dict:
+    """Exact and near-duplicate pairs within the Hamming radius (table ``pairs``)."""
+    from curate.pair_store import find_pairs
+
+    pairs = find_pairs(ctx.workspace, progress=ctx.progress)
+    conflicts = pairs["conflict"].dropna() if len(pairs) else pairs.get("conflict", [])
+    return {
+        "pairs": len(pairs),
+        "verdicts": _counts(pairs["verdict"]) if len(pairs) else {},
+        "conflicts": _counts(conflicts) if len(conflicts) else {},
+    }
+
+
+def map_labels(ctx: PipelineContext) -> dict:
+    """Map raw labels onto the example taxonomy through ``workspace/labels.csv``.
+
+    Demo shortcut: proposed mappings are applied without review. With your own
+    data, read ``labels.csv``, confirm or fix each row, then run ``curate taxonomy``.
+    """
+    from curate.taxonomy import example_taxonomy
+    from curate.taxonomy_workspace import map_workspace_labels
+
+    ctx.taxonomy = example_taxonomy()
+    mapping = ctx.workspace.path / "labels.csv"
+    result = map_workspace_labels(ctx.workspace, ctx.taxonomy, mapping, propose=True, accept_proposed=True)
+    ctx.echo(f"  proposed mappings applied unreviewed (demo); review {mapping}")
+    return {"images": result.images, "mapped": result.mapped, "unmapped_labels": len(result.unmapped)}
+
+
+def estimate_skin_tones(ctx: PipelineContext) -> dict:
+    """Skin tone (ITA bin) of each distinct file, a coverage measure for the dataset."""
+    from curate.skin_tone_files import estimate_skin_tone
+
+    table = estimate_skin_tone(ctx.workspace, progress=ctx.progress)
+    return {"bins": _counts(table["ita_bin"].fillna("none"))}
+
+
+def check_class_balance(ctx: PipelineContext) -> dict:
+    """Images, lesions and patients per taxonomy node; nodes flagged as too small or imbalanced."""
+    from curate.balance import balance
+    from curate.taxonomy_workspace import node_frame
+
+    table = balance(node_frame(ctx.workspace), ctx.taxonomy)
+    flagged = table[table["flags"].astype(bool)]
+    return {"nodes_with_images": int((table["images"] > 0).sum()), "nodes_flagged": len(flagged)}
+
+
+def build_leakage_groups(ctx: PipelineContext) -> dict:
+    """Leakage groups: same patient, lesion, digest, or near-duplicate pair."""
+    from curate.split_store import build_groups
+
+    grouping = build_groups(ctx.workspace)
+    return {"groups": grouping.n_groups, "findings": grouping.report.counts()}
+
+
+def propose_demo_split(ctx: PipelineContext) -> dict:
+    """A 70/15/15 grouped split stratified by taxonomy node at depth 1."""
+    from curate.split_store import split_workspace
+
+    assignment = split_workspace(ctx.workspace, stratify=["node:1"], random_state=0, taxonomy=ctx.taxonomy)
+    return {"images": _counts(assignment.splits), "findings": assignment.report.counts()}
+
+
+def check_split_leakage(ctx: PipelineContext) -> dict:
+    """Independent leakage check of the split (shared files, near-duplicates, patients, lesions)."""
+    from curate.freeze import workspace_split_table
+    from curate.leakage_check import check_leakage
+
+    table = workspace_split_table(ctx.workspace)
+    table = table[["path", "split", "patient_id", "lesion_id", "sha256", "source"]]
+    report = check_leakage(table, root="/", cache=ctx.workspace.path / "check-cache",
+                           patient_scope="source", lesion_scope="source", progress=ctx.progress)
+    ctx.leak_free = report.ok
+    return {"images": report.n_images, "leaks": report.counts()}
+
+
+def freeze_demo_split(ctx: PipelineContext) -> dict:
+    """Freeze the split as a manifest (refused while the split leaks)."""
+    from curate.errors import LeakageError
+    from curate.freeze import freeze_split
+
+    try:
+        frozen = freeze_split(ctx.workspace, "demo", progress=ctx.progress, command="curate demo")
+    except LeakageError as exc:
+        return {"frozen": "no, the split leaks", "reason": str(exc).splitlines()[0]}
+    return {"frozen": "yes", "files": ", ".join(str(p) for p in frozen.files.values())}
+
+
+def _counts(values) -> dict:
+    import pandas as pd
+
+    return {str(k): int(v) for k, v in pd.Series(values).value_counts().sort_index().items()}
+
+
 #: the steps run in order; a step is added here once its library code exists
-STEPS: tuple[Step, ...] = (Step("scan", scan_sources),)
+STEPS: tuple[Step, ...] = (
+    Step("scan", scan_sources),
+    Step("hash", hash_images),
+    Step("pairs", find_duplicate_pairs),
+    Step("taxonomy", map_labels),
+    Step("skin_tone", estimate_skin_tones),
+    Step("balance", check_class_balance),
+    Step("groups", build_leakage_groups),
+    Step("split", propose_demo_split),
+    Step("check", check_split_leakage),
+    Step("freeze", freeze_demo_split),
+)
 
 
 def run_pipeline(out_dir, *, progress: bool = True, echo: Callable[[str], None] = print, steps=None) -> dict:
