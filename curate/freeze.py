@@ -3,7 +3,8 @@
 :func:`freeze_split` takes the workspace's catalog and its ``splits``,
 ``groups``, ``image_nodes`` and ``skin_tone`` tables, re-digests every image,
 refuses a split that leaks (per :func:`curate.leakage.find_leaks` on the
-workspace's own data), and writes ``WS/manifests/NAME.csv``, ``NAME.parquet``
+workspace's own data), leaves out files that do not decode as images (listed
+as excluded in the sidecar), and writes ``WS/manifests/NAME.csv``, ``NAME.parquet``
 and the sidecar ``NAME.manifest.json`` atomically, recording the manifest in
 the ``manifests`` table. Rows are sorted by path, relative to a declared root.
 
@@ -57,8 +58,9 @@ class FrozenManifest:
             f"written: {', '.join(str(p) for p in self.files.values())}",
         ]
         if m.excluded:
-            lines.append(f"{len(m.excluded)} image files under the root are not in the manifest "
-                         "(listed as excluded in the sidecar)")
+            reasons = pd.Series([e["reason"] for e in m.excluded]).value_counts()
+            lines.append("left out, listed as excluded in the sidecar: "
+                         + ", ".join(f"{n} {reason}" for reason, n in reasons.items()))
         if not self.leakage.ok:
             lines.append("WARNING: frozen despite leakage (--allow-leaks):\n" + self.leakage.summary())
         return "\n".join(lines)
@@ -75,8 +77,13 @@ def package_versions() -> dict[str, str]:
     return out
 
 
-def workspace_split_table(ws: Workspace) -> pd.DataFrame:
-    """The catalog joined with splits, groups, taxonomy nodes and skin-tone bins.
+def workspace_split_table(ws: Workspace, *, everything: bool = False) -> pd.DataFrame:
+    """The images a manifest of the workspace lists, with split, group, node and skin-tone bin.
+
+    Those are the catalog images that have a split and decode as images (a
+    file Pillow cannot decode is no training data; it is listed as excluded
+    instead). With ``everything=True`` every present catalog image comes back,
+    ``split`` missing where there is none.
 
     Raises :class:`~curate.errors.ManifestError` when the workspace has no
     split, or when split images are no longer in the catalog.
@@ -96,7 +103,11 @@ def workspace_split_table(ws: Workspace) -> pd.DataFrame:
     nodes = ws.read_sql("SELECT image_id, node, training_class FROM image_nodes")
     table = table.merge(nodes, on="image_id", how="left")
     tone = ws.read_sql("SELECT sha256, ita_bin AS skin_tone_bin FROM skin_tone")
-    return table.merge(tone, on="sha256", how="left")
+    table = table.merge(tone, on="sha256", how="left")
+    if everything:
+        return table
+    keep = table["split"].notna() & (table["decodable"] == 1)
+    return table[keep].reset_index(drop=True)
 
 
 def workspace_pairs(ws: Workspace, table: pd.DataFrame) -> pd.DataFrame:
@@ -187,8 +198,8 @@ def freeze_split(
     if taken or len(recorded):
         raise ManifestError(f"manifest {name!r} already exists in {folder}; choose another name")
 
-    everything = workspace_split_table(ws)
-    table = everything[everything["split"].notna()].reset_index(drop=True)
+    everything = workspace_split_table(ws, everything=True)
+    table = workspace_split_table(ws)
     _check_digests(table, progress=progress)
     base = Path(root).absolute() if root is not None else _common_folder(table["path"])
     rel = _relative_paths(table["path"], base)
@@ -267,7 +278,7 @@ def _excluded(everything: pd.DataFrame, base: Path, listed: set[str]) -> list[di
     for row in everything.itertuples(index=False):
         r = os.path.relpath(row.path, base)
         if not r.startswith(".."):
-            reason = "not decodable" if not row.decodable else "no split"
+            reason = "not decodable as an image" if not row.decodable else "no split"
             known[Path(r).as_posix()] = reason
     out = []
     for entry in walk_images(base, extensions=IMAGE_EXTENSIONS):

@@ -184,6 +184,26 @@ def test_read_manifest_loads_it_back_in_one_call(frozen):
         assert len(t) == 5 and {"path", "split", "sha256", "patient_id", "group_id"} <= set(t.columns)
 
 
+def test_freeze_leaves_out_undecodable_files_and_records_them(tmp_path):
+    ws = make_workspace(tmp_path, CLEAN)
+    broken = tmp_path / "data" / "broken.jpg"
+    broken.write_bytes(b"\xff\xd8\xff truncated")
+    with ws.transaction() as con:
+        con.execute(
+            "INSERT INTO images(image_id, path, root, source, sha256, decodable, first_seen, last_seen) "
+            "VALUES (6, ?, ?, 'clinic_a', ?, 0, ?, ?)",
+            (str(broken), str(tmp_path / "data"), hashlib.sha256(broken.read_bytes()).hexdigest(),
+             utc_now(), utc_now()),
+        )
+        con.execute("INSERT INTO splits VALUES (6, 'test')")
+    save(blob_image(60), tmp_path / "data" / "stray.png")  # on disk, not in the catalog
+    result = freeze_split(ws, "v1", progress=False)
+    assert "broken.jpg" not in set(result.manifest.table["path"])
+    assert sorted((e["path"], e["reason"]) for e in result.manifest.excluded) == [
+        ("broken.jpg", "not decodable as an image"), ("stray.png", "not in the catalog")]
+    assert verify_manifest(result.files["csv"], progress=False).ok
+
+
 def test_freeze_never_reuses_a_name(frozen):
     ws, _ = frozen
     with pytest.raises(ManifestError, match="already exists"):
