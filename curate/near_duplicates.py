@@ -1,0 +1,420 @@
+"""Near-duplicate pairs from perceptual hashes: candidates, distances, scores, verdicts, clusters.
+
+Pure: takes a catalog and a hash frame (DataFrames) and returns DataFrames; it
+never opens images, reads files or prints. The workspace layer is
+:mod:`curate.pair_store`.
+
+How a pair is judged (the rule is written out in ``docs/near_duplicates.md``):
+
+1. **Candidates** are pairs of distinct image contents (SHA-256) that come within
+   ``radius`` bits on at least one of: average, difference, DCT or wavelet hash
+   (as stored); the DCT hash of any of the 8 rotations/flips of one image against
+   the other's DCT hash; the DCT hash of a crop window of one image against the
+   other's DCT hash. Found exactly with :mod:`curate.hamming_index`.
+2. **Alignment.** Each candidate is compared three ways: as stored (orientation
+   0), under its best rotation/flip (the ``t`` minimising the DCT hash distance),
+   and as a crop (best window). Under a rotation/flip the average and wavelet
+   hashes are compared after permuting their 8x8 bit grid the same way (both are
+   thresholded 8x8 grids of a square thumbnail, so a rotation of the image
+   rotates the grid); the difference hash compares neighbouring pixels in one
+   direction, so it is only compared unrotated. The colour hash (hue and
+   saturation histogram) does not change under rotation.
+3. **Verdict.** ``exact`` when the files have the same SHA-256. ``near`` when
+   several hash families agree (thresholds in :data:`NEAR_THRESHOLDS`) and the
+   colour hashes are within :data:`COLOUR_TOLERANCE`: as stored, the DCT and the
+   difference hash agree and so does the average or the wavelet hash (3 or 4 of
+   4 families); under a rotation/flip, the DCT (within
+   :data:`TURNED_PHASH_THRESHOLD`), average and wavelet hashes all agree (3 of
+   3); or a crop window matches within :data:`CROP_NEAR_DISTANCE` with colour
+   hashes within :data:`CROP_COLOUR_TOLERANCE`. Everything else found is
+   ``possible``: a person should look.
+4. **Score** in [0, 1]: one minus the mean distance of the compared structural
+   hashes over 32 bits (the expected distance of unrelated codes), for the best
+   of the three alignments; 1 for exact copies.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
+
+from curate.hamming_index import hamming_distance, radius_pairs, radius_query
+
+__all__ = [
+    "DEFAULT_RADIUS",
+    "score_pairs",
+    "duplicate_clusters",
+    "conflict_of",
+    "PAIR_COLUMNS",
+]
+
+#: Default search radius in bits (inclusive) for candidates on any hash.
+DEFAULT_RADIUS = 8
+#: Structural hash families, as stored.
+STRUCTURAL = ("ahash", "dhash", "phash", "whash")
+#: Largest distance (bits, inclusive) at which a structural hash counts as agreeing (stored
+#: orientation). Tuned on the demo scenario (see docs/near_duplicates.md).
+NEAR_THRESHOLDS = {"ahash": 4, "dhash": 6, "phash": 6, "whash": 4}
+#: Under a rotation/flip the difference hash cannot be compared, so the DCT hash must be tighter.
+TURNED_PHASH_THRESHOLD = 4
+#: Largest colour hash distance (bits) for colour-compatible images.
+COLOUR_TOLERANCE = 6
+#: Largest crop-window DCT hash distance (bits) for a confident crop match ...
+CROP_NEAR_DISTANCE = 3
+#: ... with colour hashes at most this far apart (a crop keeps the colour mix).
+CROP_COLOUR_TOLERANCE = 2
+#: Expected Hamming distance of unrelated 64-bit codes, used to scale the score.
+UNRELATED_BITS = 32.0
+
+PAIR_COLUMNS = [
+    "image_a", "image_b", "d_ahash", "d_dhash", "d_phash", "d_whash", "d_colorhash",
+    "d_crop", "orientation", "crop", "score", "verdict", "conflict",
+]
+
+
+# --- bit-grid permutations for the 8 rotations/flips ------------------------------------
+
+
+def _dihedral_permutations() -> np.ndarray:
+    """``perm[t][p]``: which bit of the 8x8 grid lands at position ``p`` under transform ``t``.
+
+    Same transform order as :data:`curate.hashing.DIHEDRAL_TRANSFORMS` (numpy.rot90 turns).
+    """
+    g = np.arange(64).reshape(8, 8)
+    grids = [g, np.rot90(g, 1), np.rot90(g, 2), np.rot90(g, 3), g[:, ::-1], g[::-1, :], g.T,
+             g[::-1, ::-1].T]
+    return np.stack([x.ravel() for x in grids])
+
+
+_PERMS = _dihedral_permutations()
+
+
+def transform_codes(codes: np.ndarray, transforms: np.ndarray) -> np.ndarray:
+    """Apply a rotation/flip (0..7) to the 8x8 bit grid of each 64-bit code.
+
+    Bits are read row-major, first bit most significant (imagehash's order).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> top_left = np.array([1 << 63], dtype=np.uint64)  # bit at row 0, column 0
+    >>> int(transform_codes(top_left, np.array([4]))[0])  # mirrored left-right -> column 7
+    72057594037927936
+    """
+    codes = np.asarray(codes, dtype=np.uint64)
+    bits = np.unpackbits(codes.astype(">u8").view(np.uint8).reshape(-1, 8), axis=1)
+    moved = np.take_along_axis(bits, _PERMS[np.asarray(transforms, dtype=np.int64)], axis=1)
+    return np.packbits(moved, axis=1).view(">u8").ravel().astype(np.uint64)
+
+
+# --- helpers -----------------------------------------------------------------------------
+
+
+def _normalise(values: pd.Series) -> pd.Series:
+    text = values.astype("string").str.strip().str.casefold().str.replace(r"\s+", " ", regex=True)
+    return text.mask(text == "")
+
+
+def conflict_of(label_a, label_b, patient_a, patient_b) -> pd.Series:
+    """Which metadata two paired images disagree on: ``label``, ``patient``, ``label+patient`` or None.
+
+    Labels compare after trimming, collapsing spaces and case-folding; a missing
+    value never conflicts.
+
+    Examples
+    --------
+    >>> conflict_of(["Melanoma", "naevus"], [" melanoma", "BCC"], ["p1", "p1"], ["p2", None]).tolist()
+    ['patient', 'label']
+    """
+    la, lb = _normalise(pd.Series(label_a)), _normalise(pd.Series(label_b))
+    pa, pb = _normalise(pd.Series(patient_a)), _normalise(pd.Series(patient_b))
+    label = (la != lb).fillna(False).to_numpy(bool) & la.notna().to_numpy() & lb.notna().to_numpy()
+    patient = (pa != pb).fillna(False).to_numpy(bool) & pa.notna().to_numpy() & pb.notna().to_numpy()
+    out = np.where(label & patient, "label+patient", np.where(label, "label", np.where(patient, "patient", None)))
+    return pd.Series(out, dtype=object)
+
+
+def _check_frames(catalog: pd.DataFrame, hashes: pd.DataFrame) -> None:
+    if not isinstance(catalog, pd.DataFrame) or not isinstance(hashes, pd.DataFrame):
+        raise TypeError("catalog and hashes must be pandas DataFrames")
+    missing = [c for c in ("image_id", "sha256") if c not in catalog.columns]
+    if missing:
+        raise ValueError(f"catalog lacks required column(s): {', '.join(missing)}")
+    need = ["sha256", *STRUCTURAL, "colorhash"] + [f"phash_t{t}" for t in range(8)]
+    missing = [c for c in need if c not in hashes.columns]
+    if missing:
+        raise ValueError(f"hash frame lacks required column(s): {', '.join(missing)}")
+    if catalog["image_id"].duplicated().any():
+        dup = catalog.loc[catalog["image_id"].duplicated(), "image_id"].iloc[0]
+        raise ValueError(f"catalog has repeated image_id {dup}")
+
+
+def _codes(frame: pd.DataFrame, column: str) -> np.ndarray:
+    col = frame[column]
+    if col.dtype == np.uint64:
+        return col.to_numpy()
+    return col.to_numpy(dtype=np.int64).view(np.uint64) if col.dtype == np.int64 else col.to_numpy(np.uint64)
+
+
+def _crop_table(hashes: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """All crop-window codes stacked, with the hash row each belongs to."""
+    if "crop_hashes" not in hashes.columns:
+        return np.zeros(0, np.uint64), np.zeros(0, np.int64)
+    arrays = [np.asarray(a if a is not None else [], dtype=np.uint64).ravel()
+              for a in hashes["crop_hashes"].tolist()]
+    counts = np.array([a.size for a in arrays], dtype=np.int64)
+    codes = np.concatenate(arrays) if arrays else np.zeros(0, np.uint64)
+    return codes, np.repeat(np.arange(len(arrays), dtype=np.int64), counts)
+
+
+def _candidate_hash_pairs(h: pd.DataFrame, radius: int, workers) -> np.ndarray:
+    """Pairs (p < q) of hash rows within ``radius`` on any family / orientation / crop window."""
+    n = len(h)
+    found = []
+    for family in STRUCTURAL:
+        i, j, _ = radius_pairs(_codes(h, family), radius, workers=workers)
+        found.append((i, j))
+    phash = _codes(h, "phash")
+    turned = np.concatenate([_codes(h, f"phash_t{t}") for t in range(1, 8)])
+    owner = np.tile(np.arange(n, dtype=np.int64), 7)
+    i, j, _ = radius_query(turned, phash, radius, workers=workers)
+    found.append((owner[i], j))
+    crops, crop_owner = _crop_table(h)
+    if crops.size:
+        i, j, _ = radius_query(crops, phash, radius, workers=workers)
+        found.append((crop_owner[i], j))
+    a = np.concatenate([f[0] for f in found])
+    b = np.concatenate([f[1] for f in found])
+    keep = a != b
+    lo, hi = np.minimum(a[keep], b[keep]), np.maximum(a[keep], b[keep])
+    key = np.unique(lo * n + hi)
+    return np.stack([key // n, key % n], axis=1) if key.size else np.zeros((0, 2), np.int64)
+
+
+def _best_crop_distance(h: pd.DataFrame, p: np.ndarray, q: np.ndarray) -> np.ndarray:
+    """Smallest DCT distance between a crop window of one image and the other's whole image."""
+    best = np.full(p.shape[0], 64, dtype=np.int64)
+    if "crop_hashes" not in h.columns or p.size == 0:
+        return best
+    crops = h["crop_hashes"].tolist()
+    phash = _codes(h, "phash")
+    widths = {np.asarray(c).size for c in crops if c is not None}
+    if len(widths) != 1 or 0 in widths:
+        return best
+    table = np.stack([np.asarray(c, dtype=np.uint64) for c in crops])  # (n, windows)
+    w = table.shape[1]
+    for own, other in ((p, q), (q, p)):
+        d = hamming_distance(table[own].ravel(), np.repeat(phash[other], w)).reshape(-1, w)
+        best = np.minimum(best, d.min(axis=1))
+    return best
+
+
+def _score_hash_pairs(h: pd.DataFrame, pq: np.ndarray) -> pd.DataFrame:
+    """Distances, best orientation, crop flag, score and verdict for hash-row pairs."""
+    p, q = pq[:, 0], pq[:, 1]
+    code = {f: _codes(h, f) for f in (*STRUCTURAL, "colorhash")}
+    d = {f: hamming_distance(code[f][p], code[f][q]).astype(np.int64) for f in code}
+    # best rotation/flip: DCT hash of transform t of image p against q's DCT hash
+    turned = np.stack([_codes(h, f"phash_t{t}")[p] for t in range(8)], axis=1)
+    d_turn = np.stack([hamming_distance(turned[:, t], code["phash"][q]) for t in range(8)], axis=1)
+    best_t = np.argmin(d_turn, axis=1)  # ties -> lowest t, so identity wins a tie
+    d_phash_t = d_turn[np.arange(len(p)), best_t].astype(np.int64)
+    d_ahash_t = hamming_distance(transform_codes(code["ahash"][p], best_t), code["ahash"][q]).astype(np.int64)
+    d_whash_t = hamming_distance(transform_codes(code["whash"][p], best_t), code["whash"][q]).astype(np.int64)
+    d_crop = _best_crop_distance(h, p, q)
+    colour_ok = d["colorhash"] <= COLOUR_TOLERANCE
+
+    # alignment 0: as stored, 4 structural hashes
+    mean0 = np.mean([d[f] for f in STRUCTURAL], axis=0)
+    # alignment t: best rotation/flip, 3 comparable hashes
+    mean_t = (d_ahash_t + d_phash_t + d_whash_t) / 3.0
+    # crop: the window match, plus the closest other family as a second opinion
+    second = np.minimum.reduce([d["ahash"], d["whash"], d_phash_t])
+    mean_c = (d_crop + second) / 2.0
+
+    # stored: the two gradient-sensitive hashes (DCT, difference) agree and at least one of the
+    # two brightness-layout hashes (average, wavelet) too: 3 or 4 of 4 families
+    th = NEAR_THRESHOLDS
+    near_stored = ((d["phash"] <= th["phash"]) & (d["dhash"] <= th["dhash"])
+                   & ((d["ahash"] <= th["ahash"]) | (d["whash"] <= th["whash"])) & colour_ok)
+    rotated = best_t != 0
+    # rotated/flipped: all 3 comparable families agree, the DCT hash more tightly
+    near_turned = (rotated & (d_phash_t <= TURNED_PHASH_THRESHOLD) & (d_ahash_t <= th["ahash"])
+                   & (d_whash_t <= th["whash"]) & colour_ok)
+    near_crop = (d_crop <= CROP_NEAR_DISTANCE) & (d["colorhash"] <= CROP_COLOUR_TOLERANCE)
+    score = np.clip(1.0 - np.minimum.reduce([mean0, np.where(rotated, mean_t, mean0), mean_c])
+                    / UNRELATED_BITS, 0.0, 1.0)
+    use_turn = rotated & ~near_stored & (mean_t < mean0)
+    use_crop = ~near_stored & ~near_turned & (near_crop | ((mean_c < mean0) & (mean_c < np.where(rotated, mean_t, np.inf))))
+    orientation = np.where(use_turn, best_t, 0)
+    out = pd.DataFrame({
+        "p": p, "q": q,
+        "d_ahash": np.where(use_turn, d_ahash_t, d["ahash"]),
+        "d_dhash": pd.array(np.where(use_turn, -1, d["dhash"]), dtype="Int64"),
+        "d_phash": np.where(use_turn, d_phash_t, d["phash"]),
+        "d_whash": np.where(use_turn, d_whash_t, d["whash"]),
+        "d_colorhash": d["colorhash"],
+        "d_crop": d_crop,
+        "orientation": orientation.astype(np.int64),
+        "crop": use_crop.astype(np.int64),
+        "score": score,
+        "verdict": np.where(near_stored | near_turned | near_crop, "near", "possible"),
+    })
+    out.loc[out["d_dhash"] == -1, "d_dhash"] = pd.NA  # not comparable under a rotation/flip
+    return out
+
+
+def _expand_to_images(hash_pairs: pd.DataFrame, members: pd.DataFrame) -> pd.DataFrame:
+    """Hash-row pairs -> image pairs (every image holding either content)."""
+    m = members[["row", "image_id"]]
+    x = hash_pairs.merge(m.rename(columns={"row": "p", "image_id": "ia"}), on="p")
+    x = x.merge(m.rename(columns={"row": "q", "image_id": "ib"}), on="q")
+    return x.drop(columns=["p", "q"])
+
+
+def _exact_pairs(catalog: pd.DataFrame) -> pd.DataFrame:
+    c = catalog.loc[catalog["sha256"].notna(), ["image_id", "sha256"]]
+    codes = pd.factorize(c["sha256"])[0].astype(np.uint64)
+    i, j, _ = radius_pairs(codes, 0)
+    ids = c["image_id"].to_numpy()
+    return pd.DataFrame({"ia": ids[i], "ib": ids[j]})
+
+
+def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DEFAULT_RADIUS,
+                workers: int | None = None) -> pd.DataFrame:
+    """Exact and near-duplicate pairs of catalog images, scored and judged.
+
+    Parameters
+    ----------
+    catalog : DataFrame
+        Columns ``image_id`` and ``sha256``; optional ``label`` and ``patient_id``
+        (for conflicts) and any others (ignored).
+    hashes : DataFrame
+        The hash frame (one row per ``sha256``: uint64 ``ahash dhash phash whash
+        colorhash phash_t0 .. phash_t7``, object ``crop_hashes``).
+    radius : int
+        Candidate radius in bits (inclusive) on any hash family, orientation or
+        crop window; default :data:`DEFAULT_RADIUS`.
+    workers : int, optional
+        Threads for the radius search.
+
+    Returns
+    -------
+    DataFrame
+        One row per pair with ``image_a < image_b``: :data:`PAIR_COLUMNS`
+        (distances in bits; ``d_dhash`` is missing under a rotation/flip,
+        ``orientation`` 0..7 in :data:`curate.hashing.DIHEDRAL_TRANSFORMS` order,
+        ``crop`` 0/1, ``score`` 0..1, ``verdict`` exact/near/possible,
+        ``conflict`` label/patient/label+patient or None), sorted by score
+        descending, then ids.
+
+    Examples
+    --------
+    >>> import numpy as np, pandas as pd
+    >>> cols = ["ahash", "dhash", "phash", "whash", "colorhash"] + [f"phash_t{t}" for t in range(8)]
+    >>> rng = np.random.default_rng(0)
+    >>> base = rng.integers(0, 2**63, size=(2, len(cols))).astype(np.uint64)
+    >>> near = base[0] ^ np.uint64(0b101)  # 2 bits off on every hash
+    >>> hashes = pd.DataFrame(np.vstack([base, near]), columns=cols)
+    >>> hashes["phash_t0"] = hashes["phash"]
+    >>> hashes.insert(0, "sha256", ["s1", "s2", "s3"])
+    >>> catalog = pd.DataFrame({"image_id": [1, 2, 3, 4], "sha256": ["s1", "s2", "s3", "s1"],
+    ...                         "label": ["naevus", "bcc", "Naevus", "bcc"]})
+    >>> score_pairs(catalog, hashes)[["image_a", "image_b", "verdict", "conflict"]]
+       image_a  image_b verdict conflict
+    0        1        4   exact    label
+    1        1        3    near     None
+    2        3        4    near    label
+    """
+    _check_frames(catalog, hashes)
+    h = hashes.drop_duplicates("sha256").reset_index(drop=True)
+    members = catalog[["image_id", "sha256"]].merge(
+        h[["sha256"]].reset_index().rename(columns={"index": "row"}), on="sha256"
+    )
+    parts = []
+    exact = _exact_pairs(catalog)
+    if len(exact):
+        exact = exact.assign(d_ahash=0, d_dhash=0, d_phash=0, d_whash=0, d_colorhash=0, d_crop=0,
+                             orientation=0, crop=0, score=1.0, verdict="exact")
+        exact["d_dhash"] = exact["d_dhash"].astype("Int64")
+        parts.append(exact)
+    if len(h) >= 2:
+        pq = _candidate_hash_pairs(h, radius, workers)
+        if len(pq):
+            parts.append(_expand_to_images(_score_hash_pairs(h, pq), members))
+    if not parts:
+        return _empty_pairs()
+    x = pd.concat(parts, ignore_index=True)
+    x["image_a"] = np.minimum(x["ia"], x["ib"])
+    x["image_b"] = np.maximum(x["ia"], x["ib"])
+    meta = catalog.set_index("image_id")
+    def col(name, ids):
+        return meta[name].reindex(ids).to_numpy() if name in meta.columns else [None] * len(ids)
+    conflict = conflict_of(col("label", x["image_a"]), col("label", x["image_b"]),
+                           col("patient_id", x["image_a"]), col("patient_id", x["image_b"]))
+    x["conflict"] = pd.Series(conflict.to_numpy(), index=x.index, dtype=object)
+    x = x[PAIR_COLUMNS].sort_values(["score", "image_a", "image_b"], ascending=[False, True, True],
+                                    kind="stable")
+    return x.reset_index(drop=True)
+
+
+def _empty_pairs() -> pd.DataFrame:
+    out = pd.DataFrame({c: pd.Series(dtype=np.int64) for c in PAIR_COLUMNS})
+    out["d_dhash"] = out["d_dhash"].astype("Int64")
+    out["score"] = out["score"].astype(float)
+    out["verdict"] = out["verdict"].astype(object)
+    out["conflict"] = out["conflict"].astype(object)
+    return out
+
+
+def duplicate_clusters(pairs: pd.DataFrame, image_ids=None, *,
+                       verdicts=("exact", "near")) -> pd.Series:
+    """Clusters of copies: connected components over pairs with the given verdicts.
+
+    Parameters
+    ----------
+    pairs : DataFrame
+        Columns ``image_a``, ``image_b``, ``verdict``.
+    image_ids : array-like, optional
+        Every image to label (images without pairs get a cluster of their own);
+        default: the images in ``pairs``.
+    verdicts : tuple of str
+        Which verdicts join images.
+
+    Returns
+    -------
+    Series
+        Cluster number (0, 1, ... in order of each cluster's smallest image id),
+        indexed by ``image_id``.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> pairs = pd.DataFrame({"image_a": [1, 2, 5], "image_b": [2, 3, 6],
+    ...                       "verdict": ["near", "exact", "possible"]})
+    >>> duplicate_clusters(pairs, [1, 2, 3, 4, 5, 6]).tolist()
+    [0, 0, 0, 1, 2, 3]
+    """
+    missing = [c for c in ("image_a", "image_b", "verdict") if c not in pairs.columns]
+    if missing:
+        raise ValueError(f"pairs lacks required column(s): {', '.join(missing)}")
+    if image_ids is None:
+        image_ids = np.union1d(pairs["image_a"].to_numpy(), pairs["image_b"].to_numpy())
+    ids = np.unique(np.asarray(image_ids))
+    use = pairs[pairs["verdict"].isin(list(verdicts))]
+    a = np.searchsorted(ids, use["image_a"].to_numpy())
+    b = np.searchsorted(ids, use["image_b"].to_numpy())
+    ok = (a < ids.size) & (b < ids.size)
+    ok[ok] &= (ids[a[ok]] == use["image_a"].to_numpy()[ok]) & (ids[b[ok]] == use["image_b"].to_numpy()[ok])
+    if not ok.all():
+        bad = use.loc[~ok].iloc[0]
+        raise ValueError(f"pair ({bad['image_a']}, {bad['image_b']}) names an image not in image_ids")
+    graph = coo_matrix((np.ones(a.size), (a, b)), shape=(ids.size, ids.size))
+    _, labels = connected_components(graph, directed=False)
+    # renumber by first appearance so numbers follow the smallest image id
+    _, first = np.unique(labels, return_index=True)
+    rank = np.empty(first.size, np.int64)
+    rank[np.argsort(first)] = np.arange(first.size)
+    return pd.Series(rank[labels], index=pd.Index(ids, name="image_id"), name="cluster")
