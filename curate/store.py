@@ -99,6 +99,7 @@ CREATE TABLE pairs (
     d_phash     INTEGER,
     d_whash     INTEGER,
     d_colorhash INTEGER,
+    d_crop      INTEGER,                  -- best crop window of one against the other (DCT hash)
     orientation INTEGER,                  -- 0..7, the dihedral transform that best aligns b to a
     crop        INTEGER NOT NULL DEFAULT 0,
     score       REAL NOT NULL,
