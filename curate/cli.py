@@ -102,8 +102,9 @@ def init_command(workspace: str) -> int:
 )
 @click.option("--root", type=click.Path(), help="Without FOLDER: where the CSV's relative paths start "
               "(default: the CSV's folder); every listed file must lie under it.")
+@click.option("--workers", type=click.IntRange(min=1), help="Threads reading files (default: up to 2).")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bars.")
-def scan_command(workspace, folder, source, metadata, columns, root, quiet) -> int:
+def scan_command(workspace, folder, source, metadata, columns, root, workers, quiet) -> int:
     """Scan FOLDER (JPEG, PNG, TIFF, BMP, WebP) into WORKSPACE, or only the files --metadata lists.
 
     Records per file its path, size, modification time, SHA-256, pixel size,
@@ -127,13 +128,15 @@ def scan_command(workspace, folder, source, metadata, columns, root, quiet) -> i
         raise click.UsageError("--root is for a metadata-only scan; with FOLDER, paths start at FOLDER")
     ws = Workspace.create(workspace)
     if folder is not None:
-        result = scan_folder(ws, folder, source=source, metadata=metadata, columns=mapping, progress=not quiet)
+        result = scan_folder(
+            ws, folder, source=source, metadata=metadata, columns=mapping, progress=not quiet, workers=workers
+        )
     else:
         from pathlib import Path
 
         result = scan_metadata(
             ws, metadata, source=source or Path(metadata).stem, columns=mapping, root=root,
-            progress=not quiet,
+            progress=not quiet, workers=workers,
         )
     click.echo(result.summary())
     return EXIT_FINDINGS if not result.report.ok else EXIT_OK
@@ -641,3 +644,79 @@ def split_command(workspace, fractions, names, stratify, random_state, keep, max
         stratify=_comma_list(stratify), random_state=random_state, keep=keep)
     click.echo(assignment.summary(max_rows))
     return EXIT_OK if assignment.report.ok else EXIT_FINDINGS
+
+
+# --- hashing -----------------------------------------------------------------------
+
+
+@command(main, "hash", "Compute perceptual hashes of catalog images not hashed yet.")
+@click.argument("workspace", type=click.Path(file_okay=False))
+@click.option("--workers", type=int, default=None,
+              help="Local processes (default: one per CPU core); 1 runs in this process.")
+@click.option("--scheduler", metavar="ADDRESS", default=None,
+              help="Run on the Dask cluster at this scheduler address; workers read files by path.")
+@click.option("--quiet", "-q", is_flag=True, help="No progress bar.")
+@click.option("--max-rows", type=click.IntRange(min=0), default=20, show_default=True,
+              help="Problems to print.")
+def hash_command(workspace, workers, scheduler, quiet, max_rows) -> int:
+    """Hash every decodable catalog image of WORKSPACE whose content has no cached hashes.
+
+    One reduced decode per file gives the average, difference, DCT, wavelet and
+    colour hashes, the DCT hash of the 8 rotations/flips and of 35 crop windows
+    (see docs/hashing.md). Hashes are cached by SHA-256, so a re-run only hashes
+    new content. Files that cannot be hashed are listed and recorded as problems
+    of step "hash"; exit code 1 means there were some.
+    """
+    from curate.hash_files import hash_workspace
+    from curate.store import Workspace
+
+    run = hash_workspace(Workspace.open(workspace), workers=workers, scheduler=scheduler,
+                         progress=not quiet)
+    click.echo(f"{run.hashed} hashed, {run.cached} already cached, {run.failed} failed")
+    if not run.report.ok:
+        click.echo(run.report.summary(max_rows))
+        return EXIT_FINDINGS
+    return EXIT_OK
+
+
+# --- pairs -------------------------------------------------------------------------
+
+
+@command(main, "pairs", "Find exact and near-duplicate image pairs (table pairs).")
+@click.argument("workspace", type=click.Path(file_okay=False))
+@click.option("--radius", type=click.IntRange(0, 64), default=None,
+              help="Largest Hamming distance (bits, inclusive) for a candidate on any hash "
+                   "(default 8).")
+@click.option("--out", "out_path", type=click.Path(dir_okay=False),
+              help="Also write the pairs as CSV (sorted by score, highest first).")
+@click.option("--workers", type=click.IntRange(1), default=None,
+              help="Processes for hashing and threads for the search (default: one per core).")
+@click.option("--max-rows", type=click.IntRange(0), default=10, show_default=True,
+              help="Pairs to print.")
+@click.option("-q", "--quiet", is_flag=True, help="No progress bars.")
+def pairs_command(workspace, radius, out_path, workers, max_rows, quiet) -> int:
+    """Find exact and near-duplicate pairs among the images of WORKSPACE.
+
+    Hashes what is not hashed yet, searches every hash family, the 8
+    rotations/flips and the crop windows within the radius, scores each pair and
+    gives a verdict: exact (same SHA-256), near (several hash families agree),
+    possible (a person should look). Conflicts mark pairs whose labels or
+    patient ids differ. The table pairs is replaced. Exit code 1 means exact or
+    near duplicates were found (see docs/near_duplicates.md).
+    """
+    from curate.near_duplicates import DEFAULT_RADIUS
+    from curate.pair_store import find_pairs, pairs_for_output
+    from curate.store import Workspace
+
+    ws = Workspace.open(workspace)
+    pairs = pairs_for_output(find_pairs(ws, radius=DEFAULT_RADIUS if radius is None else radius,
+                                        workers=workers, progress=not quiet))
+    if out_path:
+        pairs.to_csv(out_path, index=False)
+    counts = pairs["verdict"].value_counts()
+    conflicts = int(pairs["conflict"].notna().sum())
+    click.echo(f"{len(pairs)} pairs: {int(counts.get('exact', 0))} exact, {int(counts.get('near', 0))} near, "
+               f"{int(counts.get('possible', 0))} possible; {conflicts} with conflicting labels/patients")
+    if max_rows and len(pairs):
+        click.echo(pairs[["path_a", "path_b", "verdict", "score", "conflict"]].head(max_rows).to_string(index=False))
+    return EXIT_FINDINGS if counts.get("exact", 0) or counts.get("near", 0) else EXIT_OK

@@ -25,7 +25,7 @@ def _run(*args):
 
 
 def test_exit_0_on_a_clean_folder_and_summary_counts_exact_duplicates(tmp_path, folder):
-    result = _run(tmp_path / "ws", folder, "--source", "north", "--quiet")
+    result = _run(tmp_path / "ws", folder, "--source", "north", "--quiet", "--workers", "1")
     assert result.exit_code == 0, result.output
     assert "north: 3 files (3 new" in result.output
     assert "no problems" in result.output
