@@ -76,6 +76,25 @@ _EXPORTS: dict[str, str] = {
     "freeze_split": "curate.freeze",
     "FrozenManifest": "curate.freeze",
     "pseudonym": "curate.pseudonyms",
+    # hashing
+    "PerceptualHash": "curate.hashing",
+    "average_hash": "curate.hashing",
+    "difference_hash": "curate.hashing",
+    "dct_hash": "curate.hashing",
+    "wavelet_hash": "curate.hashing",
+    "colour_hash": "curate.hashing",
+    "hash_thumbnail": "curate.hashing",
+    "hash_files": "curate.hash_files",
+    "hash_workspace": "curate.hash_files",
+    "load_hashes": "curate.hash_files",
+    # pairs (near-duplicate search)
+    "radius_pairs": "curate.hamming_index",
+    "radius_query": "curate.hamming_index",
+    "score_pairs": "curate.near_duplicates",
+    "duplicate_clusters": "curate.near_duplicates",
+    "find_pairs": "curate.pair_store",
+    "load_pairs": "curate.pair_store",
+    "find_near_duplicates": "curate.pair_store",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]

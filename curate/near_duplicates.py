@@ -10,7 +10,9 @@ How a pair is judged (the rule is written out in ``docs/near_duplicates.md``):
    ``radius`` bits on at least one of: average, difference, DCT or wavelet hash
    (as stored); the DCT hash of any of the 8 rotations/flips of one image against
    the other's DCT hash; the DCT hash of a crop window of one image against the
-   other's DCT hash. Found exactly with :mod:`curate.hamming_index`.
+   other's DCT hash. Found exactly with :mod:`curate.hamming_index`. A candidate is
+   kept when its DCT hash is within ``radius`` under some alignment (below) or
+   at least 3 of the 4 structural hashes are; one coarse hash alone is not enough.
 2. **Alignment.** Each candidate is compared three ways: as stored (orientation
    0), under its best rotation/flip (the ``t`` minimising the DCT hash distance),
    and as a crop (best window). Under a rotation/flip the average and wavelet
@@ -211,7 +213,7 @@ def _best_crop_distance(h: pd.DataFrame, p: np.ndarray, q: np.ndarray) -> np.nda
     return best
 
 
-def _score_hash_pairs(h: pd.DataFrame, pq: np.ndarray) -> pd.DataFrame:
+def _score_hash_pairs(h: pd.DataFrame, pq: np.ndarray, radius: int) -> pd.DataFrame:
     """Distances, best orientation, crop flag, score and verdict for hash-row pairs."""
     p, q = pq[:, 0], pq[:, 1]
     code = {f: _codes(h, f) for f in (*STRUCTURAL, "colorhash")}
@@ -262,6 +264,11 @@ def _score_hash_pairs(h: pd.DataFrame, pq: np.ndarray) -> pd.DataFrame:
         "score": score,
         "verdict": np.where(near_stored | near_turned | near_crop, "near", "possible"),
     })
+    # a candidate found on one coarse hash alone is dropped: keep it when the DCT hash is within
+    # the radius under some alignment (stored, rotated/flipped, crop window) or 3 families are
+    d_phash_any = np.minimum(d_phash_t, d_crop)
+    within = sum((d[f] <= radius).astype(int) for f in STRUCTURAL)
+    out = out[(d_phash_any <= radius) | (within >= 3)]
     out.loc[out["d_dhash"] == -1, "d_dhash"] = pd.NA  # not comparable under a rotation/flip
     return out
 
@@ -343,7 +350,7 @@ def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DE
     if len(h) >= 2:
         pq = _candidate_hash_pairs(h, radius, workers)
         if len(pq):
-            parts.append(_expand_to_images(_score_hash_pairs(h, pq), members))
+            parts.append(_expand_to_images(_score_hash_pairs(h, pq, radius), members))
     if not parts:
         return _empty_pairs()
     x = pd.concat(parts, ignore_index=True)
