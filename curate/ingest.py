@@ -174,7 +174,7 @@ def scan_folder(
         (entries if isinstance(item, FileEntry) else findings).append(item)
     if meta_rows is not None:
         walked = {e.path for e in entries}
-        findings.extend(_unmatched_rows(meta_rows, walked, str(metadata)))
+        findings.extend(_unmatched_rows(meta_rows, walked, os.path.abspath(os.fspath(metadata))))
     return _scan(ws, source, root, entries, meta_rows, findings, progress, started, workers)
 
 

@@ -183,3 +183,11 @@ def test_bad_column_mappings_are_value_errors(text, message):
 def test_mapping_to_a_column_the_csv_lacks_names_it():
     with pytest.raises(CatalogError, match="label=diagnosis"):
         read_metadata(b"path,dx\na.jpg,x\n", file="m.csv", columns={"label": "diagnosis"})
+
+
+def test_a_relative_metadata_path_is_reported_absolute(ws, folder, tmp_path, monkeypatch):
+    _write(tmp_path / "meta.csv", "path\na.jpg\nnot_there.jpg\na.jpg\n")
+    monkeypatch.chdir(tmp_path)
+    result = scan_folder(ws, folder, metadata="meta.csv", progress=False)
+    assert _problems(result) == [("duplicate_path", 4), ("path_not_found", 3)]
+    assert {f.file for f in result.report} == {str(tmp_path / "meta.csv")}
