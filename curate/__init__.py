@@ -84,7 +84,7 @@ _EXPORTS: dict[str, str] = {
     "wavelet_hash": "curate.hashing",
     "colour_hash": "curate.hashing",
     "hash_thumbnail": "curate.hashing",
-    "hash_files": "curate.hash_files",
+    # (the function hash_files stays in curate.hash_files: the submodule has that name)
     "hash_workspace": "curate.hash_files",
     "load_hashes": "curate.hash_files",
     # pairs (near-duplicate search)

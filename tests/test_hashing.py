@@ -9,7 +9,8 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from PIL import Image, ImageDraw
+from hash_pictures import drawn
+from PIL import Image
 
 from curate import hashing as H
 from curate.hashing import PerceptualHash
@@ -17,18 +18,6 @@ from curate.hashing import PerceptualHash
 # The reference for every equality below is imagehash 4.3.2 (Johannes Buchner), the version
 # installed here; if a later imagehash changes an algorithm, branch on imagehash.__version__.
 assert imagehash.__version__.startswith("4.3"), imagehash.__version__
-
-
-def drawn(width: int, height: int, seed: int) -> Image.Image:
-    """A picture drawn at test time: coloured background and a few ellipses."""
-    rng = np.random.default_rng(seed)
-    img = Image.new("RGB", (width, height), tuple(int(v) for v in rng.integers(90, 230, 3)))
-    draw = ImageDraw.Draw(img)
-    for _ in range(5):
-        x, y = rng.integers(0, width), rng.integers(0, height)
-        r = int(rng.integers(max(1, width // 10), max(2, width // 3)))
-        draw.ellipse([x - r, y - r, x + r, y + r], fill=tuple(int(v) for v in rng.integers(0, 255, 3)))
-    return img
 
 
 def skimage_photo(name: str) -> Image.Image:
