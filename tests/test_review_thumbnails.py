@@ -10,7 +10,9 @@ from review_workspace import draw_lesion
 from curate.hashing import DIHEDRAL_TRANSFORMS
 from curate.thumbnails import (
     ORIENTATION_NAMES,
+    INVERSE_ORIENTATION,
     ThumbnailCache,
+    align_to,
     difference_image,
     fit_square,
     orient,
@@ -134,3 +136,13 @@ def test_thumbnails_are_turned_upright_by_the_exif_orientation_tag(tmp_path):
     assert upright.size == (100, 160) and thumb.size == (50, 80)
     ref = np.asarray(upright.convert("RGB").resize(thumb.size), dtype=float)
     assert np.abs(np.asarray(thumb, dtype=float) - ref).mean() < 8
+
+
+@pytest.mark.parametrize("turn", [Image.Transpose.ROTATE_90, Image.Transpose.ROTATE_270])
+def test_a_quarter_turn_is_undone_whichever_direction_the_code_names(turn):
+    # a pair's orientation may name the turn of a onto b or of b onto a; for 90/270 these differ
+    a = draw_lesion(5, size=120)
+    b = a.transpose(turn)
+    for code in (1, 3):
+        assert np.asarray(align_to(a, b, code)).tobytes() == np.asarray(a).tobytes()
+    assert [INVERSE_ORIENTATION[INVERSE_ORIENTATION[k]] for k in range(8)] == list(range(8))
