@@ -1,0 +1,210 @@
+"""Near-duplicate scoring, verdicts, conflicts, clusters, workspace pairs and the CLI."""
+
+import os
+import shutil
+
+import numpy as np
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+from PIL import Image, ImageDraw
+
+from curate.near_duplicates import conflict_of, duplicate_clusters, score_pairs, transform_codes
+from curate.pair_store import find_near_duplicates, find_pairs, load_pairs
+
+
+# --- clusters against networkx ----------------------------------------------------------
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_clusters_match_networkx_components(seed):
+    nx = pytest.importorskip("networkx")
+    rng = np.random.default_rng(seed)
+    ids = np.sort(rng.choice(10_000, size=120, replace=False))
+    m = 90
+    a, b = rng.choice(ids, m), rng.choice(ids, m)
+    keep = a != b
+    pairs = pd.DataFrame({"image_a": np.minimum(a, b)[keep], "image_b": np.maximum(a, b)[keep],
+                          "verdict": rng.choice(["exact", "near", "possible"], keep.sum())})
+    clusters = duplicate_clusters(pairs, ids)
+    g = nx.Graph()
+    g.add_nodes_from(ids.tolist())
+    joined = pairs[pairs["verdict"].isin(["exact", "near"])]
+    g.add_edges_from(zip(joined["image_a"].tolist(), joined["image_b"].tolist()))
+    # reference: networkx 3.x connected_components gives the same partition
+    ours = {frozenset(grp.index) for _, grp in clusters.groupby(clusters)}
+    theirs = {frozenset(c) for c in nx.connected_components(g)}
+    assert ours == theirs
+
+
+def test_clusters_reject_unknown_images():
+    pairs = pd.DataFrame({"image_a": [1], "image_b": [9], "verdict": ["near"]})
+    with pytest.raises(ValueError, match="not in image_ids"):
+        duplicate_clusters(pairs, [1, 2])
+
+
+# --- bit-grid transforms against Pillow + imagehash --------------------------------------------
+
+
+def _drawn(seed, size=96):
+    rng = np.random.default_rng(seed)
+    img = Image.new("RGB", (size, size), tuple(int(v) for v in rng.integers(120, 230, 3)))
+    draw = ImageDraw.Draw(img)
+    for _ in range(4):
+        x, y = (int(v) for v in rng.integers(0, size - 30, 2))
+        w, h = (int(v) for v in rng.integers(10, 40, 2))
+        draw.ellipse([x, y, x + w, y + h], fill=tuple(int(v) for v in rng.integers(20, 200, 3)))
+    return img
+
+
+def _code(h):
+    return int("".join("1" if b else "0" for b in h.hash.ravel()), 2)
+
+
+@pytest.mark.parametrize("t", range(8))
+def test_average_hash_grid_permutation_matches_transformed_image(t):
+    imagehash = pytest.importorskip("imagehash")
+    from curate.hashing import PIL_TRANSPOSE
+
+    diffs = []
+    for seed in range(10):
+        img = _drawn(seed)
+        turned = img if PIL_TRANSPOSE[t] is None else img.transpose(PIL_TRANSPOSE[t])
+        # reference: imagehash 4.x average_hash of the rotated/flipped image
+        want = np.array([_code(imagehash.average_hash(turned))], np.uint64)
+        got = transform_codes(np.array([_code(imagehash.average_hash(img))], np.uint64), np.array([t]))
+        diffs.append(bin(int(want[0]) ^ int(got[0])).count("1"))
+    assert max(diffs) <= 2  # resampling of an 8x8 grid is symmetric up to rounding ties
+
+
+# --- scoring on hashed drawn images -----------------------------------------------------------
+
+
+def _write_set(folder):
+    """Originals, a byte copy, a re-encode, a rotation, a flip, and unrelated drawings."""
+    paths = {}
+    for k in range(6):
+        p = folder / f"orig{k}.png"
+        _drawn(100 + k, 160).save(p)
+        paths[f"orig{k}"] = p
+    shutil.copy(paths["orig0"], folder / "byte.png")
+    Image.open(paths["orig1"]).convert("RGB").save(folder / "reencode.jpg", quality=80)
+    Image.open(paths["orig2"]).transpose(Image.Transpose.ROTATE_90).save(folder / "rot90.png")
+    Image.open(paths["orig3"]).transpose(Image.Transpose.FLIP_LEFT_RIGHT).save(folder / "flip.png")
+    return {("orig0.png", "byte.png"): "exact", ("orig1.png", "reencode.jpg"): "near",
+            ("orig2.png", "rot90.png"): "near", ("orig3.png", "flip.png"): "near"}
+
+
+def test_find_near_duplicates_on_a_folder(tmp_path):
+    expected = _write_set(tmp_path)
+    pairs = find_near_duplicates(tmp_path, workers=1)
+    names = {(os.path.basename(a), os.path.basename(b)): v
+             for a, b, v in zip(pairs["path_a"], pairs["path_b"], pairs["verdict"])}
+    for (a, b), verdict in expected.items():
+        assert names.get((a, b), names.get((b, a))) == verdict, (a, b)
+    confident = {frozenset(k) for k, v in names.items() if v in ("exact", "near")}
+    assert confident == {frozenset(k) for k in expected}
+    assert pairs["score"].is_monotonic_decreasing
+    rot = pairs[[os.path.basename(p) == "rot90.png" or os.path.basename(q) == "rot90.png"
+                 for p, q in zip(pairs["path_a"], pairs["path_b"])]]
+    assert rot["orientation"].iloc[0] in (1, 3)  # rot90 one way or the other
+
+
+def test_find_near_duplicates_takes_a_list_or_a_frame(tmp_path):
+    _write_set(tmp_path)
+    files = sorted(str(p) for p in tmp_path.iterdir())
+    table = pd.DataFrame({"path": files, "label": ["naevus"] * len(files)})
+    table.loc[table["path"].str.endswith("byte.png"), "label"] = "Melanoma"
+    by_frame = find_near_duplicates(table, workers=1)
+    by_list = find_near_duplicates(files, workers=1)
+    assert len(by_frame) == len(by_list)
+    exact = by_frame[by_frame["verdict"] == "exact"]
+    assert exact["conflict"].tolist() == ["label"]
+    with pytest.raises(ValueError, match="'path' column"):
+        find_near_duplicates(pd.DataFrame({"file": files}))
+    with pytest.raises(FileNotFoundError):
+        find_near_duplicates(tmp_path / "missing")
+
+
+def test_score_pairs_checks_its_inputs():
+    with pytest.raises(ValueError, match="sha256"):
+        score_pairs(pd.DataFrame({"image_id": [1]}), pd.DataFrame({"sha256": []}))
+    with pytest.raises(ValueError, match="hash frame lacks"):
+        score_pairs(pd.DataFrame({"image_id": [1], "sha256": ["a"]}), pd.DataFrame({"sha256": ["a"]}))
+
+
+def test_one_hash_alone_does_not_make_a_near_pair():
+    """Identical average hash but unrelated DCT/difference hashes: not near (look-alikes)."""
+    cols = ["ahash", "dhash", "phash", "whash", "colorhash"] + [f"phash_t{t}" for t in range(8)]
+    rng = np.random.default_rng(3)
+    rows = rng.integers(0, 2**63, size=(2, len(cols))).astype(np.uint64)
+    rows[1, 0] = rows[0, 0]  # same ahash
+    rows[1, 3] = rows[0, 3]  # same whash
+    rows[1, 4] = rows[0, 4]  # same colour
+    h = pd.DataFrame(rows, columns=cols)
+    h["phash_t0"] = h["phash"]
+    h.insert(0, "sha256", ["x", "y"])
+    out = score_pairs(pd.DataFrame({"image_id": [1, 2], "sha256": ["x", "y"]}), h)
+    assert "near" not in set(out["verdict"])
+
+
+def test_conflict_codes():
+    got = conflict_of(["A b", "x", None, "x"], ["a  B", "y", "z", "y"], ["1", "1", "1", "2"],
+                      ["1", "1", "2", None]).tolist()
+    assert got == [None, "label", "patient", "label"]
+
+
+# --- workspace and CLI -----------------------------------------------------------------------
+
+
+def _workspace_with_images(tmp_path):
+    from curate.store import Workspace, utc_now
+    import hashlib
+
+    folder = tmp_path / "img"
+    folder.mkdir()
+    _write_set(folder)
+    ws = Workspace.create(tmp_path / "ws")
+    now = utc_now()
+    with ws.transaction() as con:
+        for k, p in enumerate(sorted(folder.iterdir())):
+            digest = hashlib.sha256(p.read_bytes()).hexdigest()
+            con.execute(
+                "INSERT INTO images(path, root, source, sha256, decodable, patient_id, label, first_seen, last_seen) "
+                "VALUES (?, ?, 's', ?, 1, ?, 'naevus', ?, ?)",
+                (str(p), str(folder), digest, f"p{k}", now, now),
+            )
+    return ws
+
+
+def test_find_pairs_writes_the_table_once(tmp_path):
+    ws = _workspace_with_images(tmp_path)
+    first = find_pairs(ws, progress=False, workers=1)
+    again = find_pairs(ws, progress=False, workers=1)
+    stored = load_pairs(ws)
+    assert len(first) == len(again) == len(stored)
+    assert set(stored["verdict"]) >= {"exact", "near"}
+    assert (stored["image_a"] < stored["image_b"]).all()
+    assert set(stored.loc[stored["verdict"] == "exact", "conflict"]) == {"patient"}
+
+
+def test_cli_pairs_writes_csv_and_exits_1_on_findings(tmp_path):
+    from curate.cli import main
+
+    ws = _workspace_with_images(tmp_path)
+    out = tmp_path / "pairs.csv"
+    result = CliRunner().invoke(main, ["pairs", str(ws.path), "--out", str(out), "-q", "--workers", "1"])
+    assert result.exit_code == 1, result.output
+    table = pd.read_csv(out)
+    assert list(table.columns[:4]) == ["path_a", "path_b", "verdict", "score"]
+    assert table["score"].is_monotonic_decreasing
+
+
+def test_cli_pairs_exit_0_without_duplicates_and_2_on_bad_workspace(tmp_path):
+    from curate.cli import main
+    from curate.store import Workspace
+
+    Workspace.create(tmp_path / "empty")
+    assert CliRunner().invoke(main, ["pairs", str(tmp_path / "empty"), "-q"]).exit_code == 0
+    result = CliRunner().invoke(main, ["pairs", str(tmp_path / "nothing"), "-q"])
+    assert result.exit_code == 2 and "not a curate workspace" in result.output
