@@ -47,7 +47,8 @@ DECISION_WORDS: dict[str, str] = {
 }
 
 #: Per-hash distance columns of table ``pairs`` (Hamming distances in bits).
-DISTANCE_COLUMNS: tuple[str, ...] = ("d_ahash", "d_dhash", "d_phash", "d_whash", "d_colorhash")
+DISTANCE_COLUMNS: tuple[str, ...] = (
+    "d_ahash", "d_dhash", "d_phash", "d_whash", "d_colorhash", "d_crop")
 
 #: Catalog fields a reviewer sees beside each image.
 IMAGE_FIELDS: tuple[str, ...] = (
@@ -346,7 +347,8 @@ class ReviewSession:
         row = self._queue.iloc[index]
         a, b = int(row["image_a"]), int(row["image_b"])
         distances = {
-            c[2:]: (None if pd.isna(row[c]) else int(row[c])) for c in DISTANCE_COLUMNS
+            c[2:]: (None if pd.isna(row.get(c)) else int(row[c]))
+            for c in DISTANCE_COLUMNS if c in row.index
         }
         return PairItem(
             image_a=a,

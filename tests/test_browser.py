@@ -99,10 +99,23 @@ def _stop_server(proc: subprocess.Popen, base: str, token: str) -> None:
 
 
 def _browser_workspace(root: Path) -> Path:
-    """A small workspace for the notebook: the demo if its generator exists, else a drawn one."""
-    from review_workspace import make_review_workspace
+    """A small demo workspace (as `curate demo` makes it) once the pairs step exists.
 
-    return make_review_workspace(root / "drawn").path
+    Until then the notebook could not fill table ``pairs`` on the demo, so a
+    hand-filled workspace of drawn lesions with candidate pairs is used instead.
+    """
+    try:
+        import curate.near_duplicates  # noqa: F401
+    except ImportError:
+        from review_workspace import make_review_workspace
+
+        return make_review_workspace(root / "drawn").path
+    from curate.demo import generate_scenario
+    from curate.pipeline import run_pipeline
+
+    demo = root / "demo"
+    generate_scenario(demo, n_images=60, random_state=0, progress=False, image_scale=0.5)
+    return Path(run_pipeline(demo, progress=False, echo=lambda line: None)["workspace"])
 
 
 @pytest.fixture

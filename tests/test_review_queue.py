@@ -38,7 +38,8 @@ def test_queue_puts_the_most_uncertain_pair_first(ws):
     assert keys(s) == [(1, 9), (3, 5), (1, 2), (3, 4), (5, 6), (7, 8)]
     assert s.current.key == (1, 9)
     assert s.current.conflict == "label" and s.current.verdict == "possible"
-    assert s.current.distances == {"ahash": 4, "dhash": 6, "phash": 8, "whash": 5, "colorhash": 2}
+    assert s.current.distances == {
+        "ahash": 4, "dhash": 6, "phash": 8, "whash": 5, "colorhash": 2, "crop": None}
 
 
 def test_every_decision_code_has_words_of_its_own():
