@@ -16,7 +16,10 @@ group where the objective grows least, which is the split with the largest
 remaining deficit over the group's classes. Then local search sweeps the
 groups in the same order, moving a group to another split, or swapping it with
 a group of its dominant class in another split, whenever that lowers ``J``,
-until a sweep changes nothing (or ``max_sweeps``). Locked groups never move.
+or with a group of similar size (within ``window`` places in the processing
+order), until a sweep changes nothing (or ``max_sweeps``). Then a few restarts
+perturb the best assignment (a small share of groups moved at random) and search
+again, keeping any improvement. Locked groups never move.
 
 The inner loops are compiled with numba; everything here works on arrays.
 """
@@ -97,20 +100,22 @@ def _place(g, s, sign, indptr, indices, data, A, sizes, Ns):
 
 
 @njit(cache=True)
-def _search(indptr, indices, data, sizes, n_c, w_c, t, W, order, assign, cand_ptr, cand_idx,
-            dominant, offsets, max_sweeps, max_candidates):
+def _search(indptr, indices, data, sizes, n_c, w_c, t, W, order, assign, locked, cand_ptr, cand_idx,
+            dominant, offsets, max_sweeps, max_candidates, window):
     S = t.shape[0]
     C = n_c.shape[0]
     G = sizes.shape[0]
     N = sizes.sum()
     A = np.zeros((S, C))
     Ns = np.zeros(S)
-    locked = assign >= 0
+    position = np.empty(G, dtype=np.int64)
+    for i in range(G):
+        position[order[i]] = i
     for g in range(G):
-        if locked[g]:
+        if assign[g] >= 0:
             _place(g, assign[g], 1.0, indptr, indices, data, A, sizes, Ns)
     for g in order:
-        if locked[g]:
+        if assign[g] >= 0:
             continue
         best_s = 0
         best_d = np.inf
@@ -152,6 +157,19 @@ def _search(indptr, indices, data, sizes, n_c, w_c, t, W, order, assign, cand_pt
                     if d < best_d:
                         best_d = d
                         best_h = h
+            # and groups of similar size (neighbours in the processing order)
+            for j in range(-window, window + 1):
+                q = position[g] + j
+                if j == 0 or q < 0 or q >= G:
+                    continue
+                h = order[q]
+                s1 = assign[h]
+                if locked[h] or s1 == s0:
+                    continue
+                d = _swap_delta(g, h, s0, s1, indptr, indices, data, A, n_c, w_c, t, sizes, Ns, N, W)
+                if d < best_d:
+                    best_d = d
+                    best_h = h
             if best_h >= 0:
                 s1 = assign[best_h]
                 _place(g, s0, -1.0, indptr, indices, data, A, sizes, Ns)
@@ -171,6 +189,23 @@ def _search(indptr, indices, data, sizes, n_c, w_c, t, W, order, assign, cand_pt
     return sweeps
 
 
+@njit(cache=True)
+def _objective(indptr, indices, data, sizes, n_c, w_c, t, W, assign):
+    S = t.shape[0]
+    A = np.zeros((S, n_c.shape[0]))
+    Ns = np.zeros(S)
+    for g in range(sizes.shape[0]):
+        _place(g, assign[g], 1.0, indptr, indices, data, A, sizes, Ns)
+    total = 0.0
+    for s in range(S):
+        for c in range(n_c.shape[0]):
+            x = A[s, c] / n_c[c] - t[s]
+            total += w_c[c] * x * x
+        x = Ns[s] / sizes.sum() - t[s]
+        total += W * x * x
+    return total
+
+
 def objective(counts, sizes, assign, targets, weights, overall_weight) -> float:
     """The objective J of an assignment (numpy; for reports and tests).
 
@@ -188,7 +223,8 @@ def objective(counts, sizes, assign, targets, weights, overall_weight) -> float:
 
 
 def search(counts, sizes, targets, weights, *, order, locked, offsets, overall_weight=1.0,
-           max_sweeps=100, max_candidates=32):
+           max_sweeps=100, max_candidates=32, window=8,
+           restarts=None, kick_fraction=0.05):
     """Assign groups (rows of ``counts``) to splits; returns (assignment, sweeps).
 
     Parameters
@@ -206,7 +242,12 @@ def search(counts, sizes, targets, weights, *, order, locked, offsets, overall_w
     locked : ndarray of int, shape (G,)
         Split index a group is locked to, or -1.
     offsets : ndarray of int, shape (G,)
-        Seeded start offsets into each group's swap candidates.
+        Seeded start offsets into each group's swap candidates (the first four
+        also seed the restarts).
+    restarts : int, optional
+        Default ``min(24, max(2, 200_000 // G))`` (many for small problems, few
+        for large ones, where they gain little). After the first search, this many times: move ``kick_fraction`` of the
+        free groups to random splits, search again, keep the result if ``J`` fell.
     """
     csr = counts.tocsr().astype(np.float64)
     csr.sum_duplicates()
@@ -218,12 +259,28 @@ def search(counts, sizes, targets, weights, *, order, locked, offsets, overall_w
     nonempty = np.diff(csr.indptr) > 0
     if nonempty.any():
         dominant[nonempty] = np.asarray(csr[nonempty].argmax(axis=1)).ravel()
-    assign = np.asarray(locked, dtype=np.int64).copy()
-    sweeps = _search(
-        csr.indptr.astype(np.int64), csr.indices.astype(np.int64), csr.data,
-        np.asarray(sizes, dtype=np.float64), n_c, np.asarray(weights, dtype=np.float64),
-        np.asarray(targets, dtype=np.float64), float(overall_weight), np.asarray(order, dtype=np.int64),
-        assign, csc.indptr.astype(np.int64), csc.indices.astype(np.int64), dominant,
-        np.asarray(offsets, dtype=np.int64), int(max_sweeps), int(max_candidates),
-    )
-    return assign, int(sweeps)
+    locked = np.asarray(locked, dtype=np.int64)
+    args = (csr.indptr.astype(np.int64), csr.indices.astype(np.int64), csr.data,
+            np.asarray(sizes, dtype=np.float64), n_c, np.asarray(weights, dtype=np.float64),
+            np.asarray(targets, dtype=np.float64), float(overall_weight))
+    tail = (csc.indptr.astype(np.int64), csc.indices.astype(np.int64), dominant,
+            np.asarray(offsets, dtype=np.int64), int(max_sweeps), int(max_candidates), int(window))
+    order = np.asarray(order, dtype=np.int64)
+    is_locked = locked >= 0
+    best = locked.copy()
+    sweeps = _search(*args, order, best, is_locked, *tail)
+    best_j = _objective(*args, best)
+    free = np.flatnonzero(~is_locked)
+    rng = np.random.default_rng(np.asarray(offsets[:4], dtype=np.int64) if len(offsets) else 0)
+    n_kick = max(2, int(round(kick_fraction * len(free))))
+    if restarts is None:
+        restarts = min(24, max(2, 200_000 // max(len(free), 1)))
+    for _ in range(restarts if len(free) > 1 else 0):
+        trial = best.copy()
+        kicked = rng.choice(free, size=min(n_kick, len(free)), replace=False)
+        trial[kicked] = rng.integers(0, len(targets), size=len(kicked))
+        sweeps += _search(*args, order, trial, is_locked, *tail)
+        j = _objective(*args, trial)
+        if j < best_j - 1e-13:
+            best, best_j = trial, j
+    return best, int(sweeps)

@@ -291,13 +291,13 @@ def group_images(
                     findings.append(Finding(
                         "groups", GroupIssue.DECISION_CONTRADICTS_ID,
                         f"reviewer says {r.decision} but the {what} ids differ "
-                        f"({ka!r} vs {kb!r}); joined anyway",
+                        f"({_shown(ka)!r} vs {_shown(kb)!r}); joined anyway",
                         image_id=int(r.image_a), related_image_id=int(r.image_b), value=r.decision))
         elif r.decision == "different_lesions":
             if same_lesion:
                 findings.append(Finding(
                     "groups", GroupIssue.DECISION_CONTRADICTS_ID,
-                    f"reviewer says different_lesions but both carry lesion id {lesion_key[a]!r}; "
+                    f"reviewer says different_lesions but both carry lesion id {_shown(lesion_key[a])!r}; "
                     "kept together", image_id=int(r.image_a), related_image_id=int(r.image_b),
                     value=r.decision))
             elif isinstance(sha[a], str) and sha[a] == sha[b]:
@@ -355,6 +355,11 @@ def _check_scope(name, value, allowed):
         raise ValueError(f"{name} must be one of {', '.join(allowed)}; got {value!r}")
 
 
+def _shown(key: str) -> str:
+    """The id part of a scoped key."""
+    return key.rsplit("\x1f", 1)[-1]
+
+
 def _id_text(value) -> str:
     if isinstance(value, float) and value.is_integer():
         value = int(value)
@@ -373,19 +378,20 @@ def _column_text(cat: pd.DataFrame, column: str) -> pd.Series:
 
 def _scoped_key(raw: pd.Series, source: pd.Series, patient: pd.Series | None, scope: str) -> pd.Series:
     """Case-folded id, prefixed by its scope (source, or source and patient)."""
-    folded = raw.map(lambda v: None if v is None else v.casefold())
+    folded = [None if v is None else v.casefold() for v in raw.tolist()]
     if scope == "global":
-        return folded
-    prefix = source.fillna("")
+        return pd.Series(folded, dtype=object)
+    prefix = ["" if p is None else p for p in source.tolist()]
     if scope == "patient":
-        prefix = prefix + "\x1f" + patient.fillna("").map(str.casefold)
+        prefix = [f"{p}\x1f{'' if q is None else q.casefold()}" for p, q in zip(prefix, patient.tolist())]
     return pd.Series([None if v is None else f"{p}\x1f{v}" for p, v in zip(prefix, folded)], dtype=object)
 
 
 def _refuse(key, raw, source, column, placeholders, max_share, min_images, refused) -> pd.Series:
     """Blank out placeholder and overshared keys, recording each refused id once."""
     key = key.copy()
-    listed = raw.map(lambda v: v is not None and is_placeholder_id(v, placeholders=placeholders))
+    listed = pd.Series([v is not None and is_placeholder_id(v, placeholders=placeholders)
+                        for v in raw.tolist()], dtype=bool)
     counts = key[~listed].value_counts()
     limit = max(min_images, max_share * len(key))
     over = set(counts.index[counts > limit])
