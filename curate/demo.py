@@ -131,7 +131,8 @@ def generate_scenario(
     started = time.perf_counter()
     out = _prepare(Path(out_dir))
     plan = plan_scenario(n_images, random_state=random_state, image_scale=image_scale)
-    for folder in sorted({os.path.dirname(p) for p in plan.files["path"]}):
+    folders = {os.path.dirname(p) for p in plan.files["path"]} | {s.folder for s in SOURCES}
+    for folder in sorted(folders):
         (out / folder).mkdir(parents=True, exist_ok=True)
     _write_images(out, plan.tasks, len(plan.files), progress, workers)
     sources = _write_metadata(out, plan.files)

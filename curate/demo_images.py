@@ -275,6 +275,13 @@ class Capture:
         Number of hair strands.
     ruler : bool
         Draw ruler marks.
+    falloff : float
+        How much the skin darkens towards one side (a limb curving away), 0..0.6.
+    falloff_angle : float
+        Direction of that darkening, radians.
+    drape : tuple, optional
+        ``(angle, offset, (r, g, b))``: beyond a line at ``offset`` (-1..1 along
+        ``angle``) the picture shows a drape or background of that colour (0..1).
     seed : int
         Seeds the skin texture, hair, noise and the small visit change of the outline.
     """
@@ -292,6 +299,9 @@ class Capture:
     white_balance: tuple = (1.0, 1.0, 1.0)
     hair: int = 0
     ruler: bool = False
+    falloff: float = 0.0
+    falloff_angle: float = 0.0
+    drape: tuple | None = None
     seed: int = 0
 
 
@@ -363,10 +373,19 @@ def _skin(cap: Capture, w: int, h: int, rng: np.random.Generator) -> Image.Image
     shade = 1.0 + 0.1 * (xx * np.cos(cap.light_angle) + yy * np.sin(cap.light_angle))
     shade = shade + 0.04 * _upsample(rng.standard_normal((5, 6)), sw, sh)
     shade = shade + 0.02 * rng.standard_normal((sh, sw), dtype=np.float32)
+    if cap.falloff:
+        side = xx * np.cos(cap.falloff_angle) + yy * np.sin(cap.falloff_angle)
+        shade = shade * (1.0 - cap.falloff * np.clip(side, 0.0, 1.0) ** 2)
     small = skin[None, None, :] * shade[..., None]
     redness = _upsample(rng.standard_normal((4, 5)), sw, sh)
     small[..., 0] += 0.02 * redness
     small[..., 2] -= 0.01 * redness
+    if cap.drape is not None:
+        angle, offset, colour = cap.drape
+        along = xx * np.cos(angle) + yy * np.sin(angle) + 0.08 * np.sin(3.0 * (yy * np.cos(angle) - xx * np.sin(angle)))
+        cover = np.clip((along - offset) / 0.03, 0.0, 1.0)[..., None]
+        cloth = np.asarray(colour, np.float32) * (1.0 + 0.05 * rng.standard_normal((sh, sw, 1), dtype=np.float32))
+        small = small * (1.0 - cover) + cloth * cover
     small = np.clip(small * 255.0 + 0.5, 0, 255).astype(np.uint8)
     return Image.fromarray(small, mode="RGB").resize((w, h), Image.Resampling.BICUBIC)
 

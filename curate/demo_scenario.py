@@ -77,6 +77,10 @@ _LOSSLESS_FRIENDLY = {"rotate90", "rotate180", "rotate270", "flip_h", "flip_v", 
 
 MIN_IMAGES = 40
 
+# drape and background colours seen at the edge of clinical photographs (sRGB 0..1, invented)
+_DRAPE_COLOURS = ((0.25, 0.45, 0.55), (0.3, 0.55, 0.45), (0.9, 0.9, 0.88), (0.35, 0.35, 0.38),
+                  (0.12, 0.14, 0.2), (0.6, 0.7, 0.8))  # fmt: skip
+
 #: skin-tone bands by Individual Typology Angle in degrees, dark to very light
 #: (the usual ITA categories: dark < -30 < brown < 10 < tan < 28 < intermediate
 #: < 41 < light < 55 < very light; common practice)
@@ -287,9 +291,12 @@ class _Planner:
         rng.shuffle(must_have)
         captures: list[dict] = []
         while len(captures) < n_originals:
-            source = SOURCES[rng.choice(len(SOURCES), p=weights / weights.sum())]
+            if len(self.patients) < len(SOURCES):  # every source gets patients of its own
+                source = SOURCES[len(self.patients)]
+            else:
+                source = SOURCES[rng.choice(len(SOURCES), p=weights / weights.sum())]
             lookalike_of = None
-            if self.lesions and rng.random() < 0.06:
+            if self.lesions and (len(self.patients) == len(SOURCES) or rng.random() < 0.06):
                 lookalike_of = self.lesions[int(rng.integers(len(self.lesions)))]
             patient = self._new_patient(source, lookalike_of)
             for k in range(min(1 + int(rng.geometric(0.5)) - 1, 4) + 1):
@@ -391,15 +398,26 @@ class _Planner:
             skin_lab=patient["skin"],
             growth=growth,
             angle=lesion["angle"] + float(rng.normal(0.0, 0.35)),
-            centre=(float(rng.uniform(0.4, 0.6)), float(rng.uniform(0.4, 0.6))),
+            centre=(float(rng.uniform(0.3, 0.7)), float(rng.uniform(0.32, 0.68))),
             zoom=zoom,
             brightness=float(rng.uniform(0.9, 1.08)),
             light_angle=float(rng.uniform(0, 2 * np.pi)),
             white_balance=tuple(float(g) for g in rng.normal(1.0, 0.025, 3)),
             hair=int(rng.poisson(patient["hair"])),
             ruler=bool(rng.random() < (0.25 if modality == "clinical" else 0.1)),
+            falloff=float(rng.uniform(0.0, 0.4)),
+            falloff_angle=float(rng.uniform(0, 2 * np.pi)),
+            drape=self._drape(modality),
             seed=int(rng.integers(2**31)),
         )
+
+    def _drape(self, modality: str):
+        """A drape or background along one side of some clinical pictures."""
+        rng = self.rng
+        if modality != "clinical" or rng.random() < 0.4:
+            return None
+        colour = _DRAPE_COLOURS[int(rng.integers(len(_DRAPE_COLOURS)))]
+        return (float(rng.uniform(0, 2 * np.pi)), float(rng.uniform(0.45, 0.85)), colour)
 
     # -- files --------------------------------------------------------------------
 

@@ -122,3 +122,19 @@ def test_curate_demo_refuses_too_few_images_and_foreign_folders(tmp_path):
 def test_curate_demo_help():
     result = CliRunner().invoke(main, ["demo", "--help"])
     assert result.exit_code == 0 and "--images" in result.output and "--seed" in result.output
+
+
+def test_later_steps_find_the_byte_copies_and_freeze_a_manifest(ran):
+    out, summary, _, truth = ran
+    from curate.store import Workspace
+
+    ws = Workspace.open(summary["workspace"])
+    catalog = ws.catalog().set_index("path")["image_id"]
+    pairs = ws.read_sql("SELECT image_a, image_b, verdict FROM pairs")
+    found = {(min(a, b), max(a, b)): v for a, b, v in pairs.itertuples(index=False)}
+    for row in truth[truth["copy_kind"] == "byte_copy"].itertuples():
+        a, b = catalog[str(out / row.path)], catalog[str(out / row.copy_of)]
+        assert found.get((min(a, b), max(a, b))) == "exact"
+    if "freeze" in summary["steps"] and summary["steps"]["freeze"]["frozen"] == "yes":
+        for path in summary["steps"]["freeze"]["files"].split(", "):
+            assert (out / path).is_file()
