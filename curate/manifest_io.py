@@ -307,6 +307,7 @@ def atomic_write(path: Path, data: bytes) -> None:
             f.write(data)
             f.flush()
             os.fsync(f.fileno())
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes it private; give it the usual mode
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
@@ -360,6 +361,12 @@ def verify_manifest(
     return compare_manifest(
         manifest, observed, present=present, table_digest=(fmt, file_sha256(table_file))
     )
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def _relative(path: str, root: Path) -> str:
