@@ -28,6 +28,8 @@ This module never prints and never writes files.
 
 from __future__ import annotations
 
+import sys
+import types
 from typing import Sequence
 
 import numpy as np
@@ -400,3 +402,18 @@ def plot_balance(table: pd.DataFrame, *, measure: str = "lesions", min_lesions: 
     fig.suptitle(f"{measure} per taxonomy node" + (f" by {by}" if by else "")
                  + (f" (red: fewer than {min_lesions})" if min_lesions else ""))
     return fig
+
+
+class _CallableModule(types.ModuleType):
+    """Lets ``curate.balance(...)`` work as the function even once the submodule is imported.
+
+    Importing ``curate.balance`` binds the package attribute ``balance`` to this
+    module, shadowing the lazily exported function of the same name; calling
+    the module calls :func:`balance`.
+    """
+
+    def __call__(self, *args, **kwargs):
+        return balance(*args, **kwargs)
+
+
+sys.modules[__name__].__class__ = _CallableModule

@@ -8,13 +8,7 @@ from hypothesis import strategies as st
 
 from curate.taxonomy import Taxonomy, example_taxonomy
 from curate.training_classes import REMAINDER_SUFFIX, propose_classes
-
-
-def random_tree(rng, n_nodes):
-    recs = [{"id": "n0", "parent": None, "name": "root"}]
-    for i in range(1, n_nodes):
-        recs.append({"id": f"n{i}", "parent": f"n{int(rng.integers(0, i))}", "name": f"node {i}"})
-    return Taxonomy.from_records(recs)
+from test_balance import random_tree  # the same random-tree builder as the balance tests
 
 
 @st.composite
