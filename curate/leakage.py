@@ -95,6 +95,11 @@ class LeakageReport:
         Placeholder ids (``"unknown"``, ``"0"`` ...) found in more than one
         split: ``column``, ``value``, ``images``, ``splits``. They link nothing
         and are not leaks, but are listed so a person can see them.
+    to_review : DataFrame
+        Cross-split pairs the near-duplicate engine was unsure about (verdict
+        ``possible``), in the layout of :attr:`leaks`. Not leaks and not
+        counted in :attr:`ok`: a person should look at them (a heavy crop, or
+        two look-alike lesions).
     """
 
     leaks: pd.DataFrame
@@ -106,6 +111,7 @@ class LeakageReport:
     ignored: pd.DataFrame = field(
         default_factory=lambda: pd.DataFrame(columns=["column", "value", "images", "splits"])
     )
+    to_review: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=LEAK_COLUMNS))
 
     @property
     def ok(self) -> bool:
@@ -126,14 +132,7 @@ class LeakageReport:
 
     def to_dict(self) -> dict:
         """A plain mapping, ready for ``json.dumps`` (the ``--json`` output)."""
-        leaks = []
-        for row in self.leaks.itertuples(index=False):
-            d = row._asdict()
-            d["distance"] = None if _missing(d["distance"]) else int(d["distance"])
-            for k in ("path_b", "split_b", "value"):
-                d[k] = None if _missing(d[k]) else d[k]
-            d["evidence"] = _plain(d["evidence"] or {})
-            leaks.append(d)
+        leaks = [_leak_record(row) for row in self.leaks.itertuples(index=False)]
         return {
             "format_version": REPORT_FORMAT_VERSION,
             "source": self.source,
@@ -145,6 +144,7 @@ class LeakageReport:
             "counts": self.counts(),
             "leaks": leaks,
             "ignored_ids": _plain(self.ignored.to_dict("records")),
+            "to_review": [_leak_record(row) for row in self.to_review.itertuples(index=False)],
         }
 
     def to_json(self, *, indent: int | None = 2) -> str:
@@ -172,7 +172,11 @@ class LeakageReport:
         """A few readable lines: the counts, then the first ``max_rows`` leaks."""
         where = f" in {self.source}" if self.source else ""
         if self.ok:
-            return f"no leakage{where}: {self.n_images} images, splits {self.split_counts}"
+            text = f"no leakage{where}: {self.n_images} images, splits {self.split_counts}"
+            if len(self.to_review):
+                text += (f"\n  {len(self.to_review)} cross-split pair(s) judged 'possible' "
+                         "near-duplicates: look at them (to_review)")
+            return text
         counts = ", ".join(f"{n} {kind}" for kind, n in self.counts().items())
         lines = [f"leakage{where}: {counts} ({self.n_images} images)"]
         for row in self.leaks.head(max_rows).itertuples(index=False):
@@ -188,6 +192,9 @@ class LeakageReport:
             )
         if len(self.leaks) > max_rows:
             lines.append(f"  ... and {len(self.leaks) - max_rows} more")
+        if len(self.to_review):
+            lines.append(f"  {len(self.to_review)} cross-split pair(s) judged 'possible' near-duplicates, "
+                         "not counted as leaks: look at them (to_review)")
         unchecked = [k for k, done in self.checks.items() if not done]
         if unchecked:
             lines.append(f"  not checked: {', '.join(unchecked)}")
@@ -207,6 +214,7 @@ def find_leaks(
     table: pd.DataFrame,
     *,
     pairs: pd.DataFrame | None = None,
+    review_pairs: pd.DataFrame | None = None,
     problems: pd.DataFrame | None = None,
     ignore_ids: Iterable[str] = (),
     patient_scope: str = "global",
@@ -228,6 +236,9 @@ def find_leaks(
         (bits); any further columns are kept as evidence. Pairs inside one
         split, and pairs whose digests are equal (already exact duplicates),
         are not leaks. When None the near-duplicate check counts as not run.
+    review_pairs : DataFrame, optional
+        Pairs the near-duplicate engine was unsure about, in the layout of
+        ``pairs``; those across splits become :attr:`LeakageReport.to_review`.
     problems : DataFrame, optional
         Files the caller could not read: ``path``, ``reason`` (``missing_file``
         or ``unreadable_file``) and optionally ``message``.
@@ -308,6 +319,7 @@ def find_leaks(
         leaks = leaks.drop(columns=["_k", "_v", "_b"]).reset_index(drop=True)
     leaks = leaks[LEAK_COLUMNS]
     counts = t["split"].value_counts()
+    review = _pair_leaks(t, review_pairs, order) if review_pairs is not None else None
     return LeakageReport(
         leaks=leaks,
         n_images=len(t),
@@ -316,6 +328,7 @@ def find_leaks(
         source=source,
         parameters=dict(parameters or {}, patient_scope=patient_scope, lesion_scope=lesion_scope),
         ignored=pd.concat(ignored, ignore_index=True) if ignored else _spanning_placeholders(t[:0], "x"),
+        to_review=review if review is not None else pd.DataFrame(columns=LEAK_COLUMNS),
     )
 
 
@@ -463,6 +476,16 @@ def _problem_rows(t: pd.DataFrame, problems: pd.DataFrame) -> pd.DataFrame:
         },
         columns=LEAK_COLUMNS,
     )
+
+
+def _leak_record(row) -> dict:
+    """One row of a leak table as a JSON-ready mapping."""
+    d = row._asdict()
+    d["distance"] = None if _missing(d["distance"]) else int(d["distance"])
+    for k in ("path_b", "split_b", "value"):
+        d[k] = None if _missing(d[k]) else d[k]
+    d["evidence"] = _plain(d["evidence"] or {})
+    return d
 
 
 def _missing(value) -> bool:

@@ -132,9 +132,9 @@ def check_leakage(
     problems = files.loc[files["problem"].notna(), ["path", "problem", "message"]].rename(
         columns={"problem": "reason"}
     )
-    pairs = None
+    pairs = review = None
     if near_duplicates:
-        pairs, unhashable = near_duplicate_pairs(
+        pairs, review, unhashable = near_duplicate_pairs(
             table, base, radius=radius, cache=cache, workers=workers, progress=progress
         )
         problems = pd.concat([problems, unhashable], ignore_index=True)
@@ -145,6 +145,7 @@ def check_leakage(
     return find_leaks(
         table,
         pairs=pairs,
+        review_pairs=review,
         problems=problems,
         ignore_ids=ignore_ids,
         patient_scope=patient_scope or "global",
@@ -162,8 +163,8 @@ def near_duplicate_pairs(
     cache=None,
     workers: int | None = None,
     progress: bool = True,
-) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Hash the table's readable files and return near-duplicate pairs by path, plus unhashable files.
+) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    """Hash the table's readable files; near-duplicate pairs by path, unsure pairs, unhashable files.
 
     Returns
     -------
@@ -171,6 +172,8 @@ def near_duplicate_pairs(
         ``path_a``, ``path_b`` (as in the table), ``distance`` (DCT hash bits,
         best orientation) and the engine's other columns as evidence; only
         pairs with a verdict in :data:`NEAR_VERDICTS`.
+    review : DataFrame
+        The same for pairs with verdict ``possible`` (for a person to look at).
     unhashable : DataFrame
         ``path``, ``reason`` (``unreadable_file``), ``message``: files whose
         bytes were read but which could not be decoded as images.
@@ -200,12 +203,13 @@ def near_duplicate_pairs(
     catalog = pd.DataFrame({"image_id": range(len(hashed)), "sha256": hashed["sha256"]})
     codes = hashes.drop(columns=["path"]).drop_duplicates("sha256")
     scored = score_pairs(catalog, codes, radius=radius, workers=workers)
-    scored = scored[scored["verdict"].isin(NEAR_VERDICTS)]
-    path = hashed["path"]
-    pairs = scored.drop(columns=["image_a", "image_b", "conflict"]).assign(
-        path_a=path.to_numpy()[scored["image_a"].to_numpy()],
-        path_b=path.to_numpy()[scored["image_b"].to_numpy()],
+    path = hashed["path"].to_numpy()
+    by_path = scored.drop(columns=["image_a", "image_b", "conflict"]).assign(
+        path_a=path[scored["image_a"].to_numpy()],
+        path_b=path[scored["image_b"].to_numpy()],
         distance=scored["d_phash"].to_numpy(),
     )
+    pairs = by_path[by_path["verdict"].isin(NEAR_VERDICTS)].reset_index(drop=True)
+    review = by_path[by_path["verdict"] == "possible"].reset_index(drop=True)
     pairs.attrs.update(radius=radius, cache=None if ws is None else str(ws.path))
-    return pairs.reset_index(drop=True), unhashable
+    return pairs, review, unhashable

@@ -118,7 +118,7 @@ def test_json_shape_and_round_trip():
     t = table(path=["a", "b"], split=["train", "test"], sha256=["x", "x"])
     d = json.loads(find_leaks(t, source="m.csv").to_json())
     assert set(d) == {"format_version", "source", "ok", "n_images", "split_counts", "checks",
-                      "parameters", "counts", "leaks", "ignored_ids"}
+                      "parameters", "counts", "leaks", "ignored_ids", "to_review"}
     assert d["ok"] is False and d["counts"] == {"exact_duplicate": 1}
     (leak,) = d["leaks"]
     assert set(leak) == set(LEAK_COLUMNS)
@@ -341,3 +341,14 @@ def test_cli_check_with_near_duplicates_and_a_cache(tmp_path):
     leak = json.loads(out.read_text())["leaks"][0]
     assert (leak["kind"], leak["path_a"], leak["path_b"]) == ("near_duplicate", "train/img2.png", "val/turned.png")
     assert run("check", data, "--radius", "99").exit_code == 2
+
+
+def test_unsure_pairs_across_splits_are_listed_for_review_not_as_leaks():
+    t = table(path=list("abc"), split=["train", "test", "train"], sha256=["1", "2", "3"])
+    unsure = pd.DataFrame({"path_a": ["a", "a"], "path_b": ["b", "c"], "distance": [9, 9],
+                           "verdict": ["possible", "possible"]})
+    r = find_leaks(t, pairs=pd.DataFrame(columns=["path_a", "path_b"]), review_pairs=unsure)
+    assert r.ok
+    assert r.to_review[["path_a", "path_b"]].values.tolist() == [["a", "b"]]
+    assert "possible" in r.summary()
+    assert json.loads(r.to_json())["to_review"][0]["distance"] == 9
