@@ -5,7 +5,7 @@ decoded with Pillow. JPEGs are decoded at reduced size with ``Image.draft``
 (libjpeg's DCT scaling, 1/2 to 1/8), so a 4000 x 3000 photograph is never
 decoded at full size. The EXIF orientation is applied, the image is converted
 to RGB and shrunk by a whole box factor (:func:`curate.hashing.shrink_for_hashing`),
-and :func:`curate.hashing.hash_thumbnail` computes every hash from that one image.
+and :func:`curate.hashing.hash_thumbnails` computes every hash from that one image.
 
 Work runs over local processes (``concurrent.futures``) by default, or on a
 Dask cluster when a ``dask.distributed.Client`` (or a scheduler address) is
@@ -29,7 +29,7 @@ import pandas as pd
 from PIL import Image, UnidentifiedImageError
 
 from curate.errors import CurateError
-from curate.hashing import DIHEDRAL_TRANSFORMS, THUMBNAIL_MIN_SIDE, hash_thumbnail, shrink_for_hashing
+from curate.hashing import DIHEDRAL_TRANSFORMS, THUMBNAIL_MIN_SIDE, hash_thumbnails, shrink_for_hashing
 from curate.report import Finding, IngestIssue, Reason, Report
 
 #: Bump when any hash changes for the same file; cached rows of other versions are recomputed.
@@ -134,44 +134,79 @@ def decode_for_hashing(
     return out.transpose(method) if method is not None else out
 
 
-def _hash_one(path: str, expected_sha256: str | None):
-    """Read, digest, decode and hash one file; a tuple either way, never an exception."""
+def _read_and_decode(path: str, expected_sha256: str | None):
+    """Read one file, check its digest, decode it reduced: ``(digest, thumbnail)``."""
     try:
-        try:
-            with open(path, "rb") as f:
-                data = f.read()
-        except FileNotFoundError:
-            raise HashError(path, IngestIssue.PATH_NOT_FOUND.value, "file not found") from None
-        except PermissionError:
-            raise HashError(path, IngestIssue.PERMISSION_DENIED.value, "permission denied") from None
-        except OSError as exc:
-            raise HashError(path, HashIssue.DECODE_FAILED.value, str(exc)[:200]) from None
-        digest = hashlib.sha256(data).hexdigest()
-        if expected_sha256 is not None and digest != expected_sha256:
-            raise HashError(
-                path, HashIssue.CHANGED_SINCE_SCAN.value,
-                f"content digest {digest[:12]}... differs from the catalog's {expected_sha256[:12]}...; re-scan",
-            )
-        thumb = decode_for_hashing(data, path=path)
-        h = hash_thumbnail(thumb)
-        codes = tuple(int(h[c]) for c in CODE_COLUMNS)
-        return ("ok", path, digest, codes, h["crop_hashes"].astype("<u8").tobytes(), thumb.size)
-    except HashError as exc:
+        with open(path, "rb") as f:
+            data = f.read()
+    except FileNotFoundError:
+        raise HashError(path, IngestIssue.PATH_NOT_FOUND.value, "file not found") from None
+    except PermissionError:
+        raise HashError(path, IngestIssue.PERMISSION_DENIED.value, "permission denied") from None
+    except OSError as exc:
+        raise HashError(path, HashIssue.DECODE_FAILED.value, str(exc)[:200]) from None
+    digest = hashlib.sha256(data).hexdigest()
+    if expected_sha256 is not None and digest != expected_sha256:
+        raise HashError(
+            path, HashIssue.CHANGED_SINCE_SCAN.value,
+            f"content digest {digest[:12]}... differs from the catalog's {expected_sha256[:12]}...; re-scan",
+        )
+    return digest, decode_for_hashing(data, path=path)
+
+
+def _ok_tuple(path: str, digest: str, thumb: Image.Image, h: dict) -> tuple:
+    codes = tuple(int(h[c]) for c in CODE_COLUMNS)
+    return ("ok", path, digest, codes, h["crop_hashes"].astype("<u8").tobytes(), thumb.size)
+
+
+def _error_tuple(path: str, exc: Exception) -> tuple:
+    if isinstance(exc, HashError):
         return ("error", exc.path, exc.reason, exc.detail)
-    except Exception as exc:  # noqa: BLE001 - any other decoder failure is this file's problem
-        return ("error", path, HashIssue.DECODE_FAILED.value, f"{type(exc).__name__}: {exc}"[:200])
+    return ("error", path, HashIssue.DECODE_FAILED.value, f"{type(exc).__name__}: {exc}"[:200])
+
+
+_CONTROLLER = None
+
+
+def _one_blas_thread():
+    """A context holding BLAS to one thread (the library scan is done once per process)."""
+    global _CONTROLLER
+    if _CONTROLLER is None:
+        from threadpoolctl import ThreadpoolController
+
+        _CONTROLLER = ThreadpoolController()
+    return _CONTROLLER.limit(limits=1)
 
 
 def hash_chunk(items: Sequence[tuple[str, str | None]]) -> list[tuple]:
     """Hash ``(path, expected_sha256 or None)`` items; what a worker runs.
 
-    BLAS is held to one thread here: the matrices are tiny and processes
-    already use every core.
+    Returns one plain tuple per item and never raises for a bad file:
+    ``("ok", path, sha256, codes, crop_bytes, (width, height))`` or
+    ``("error", path, reason, detail)``. The decoded thumbnails are hashed
+    together (:func:`curate.hashing.hash_thumbnails`). BLAS is held to one
+    thread: the matrices are tiny and processes already use every core.
     """
-    from threadpoolctl import threadpool_limits
-
-    with threadpool_limits(1):
-        return [_hash_one(path, expected) for path, expected in items]
+    out: list = [None] * len(items)
+    decoded = []
+    for k, (path, expected) in enumerate(items):
+        try:
+            digest, thumb = _read_and_decode(path, expected)
+            decoded.append((k, path, digest, thumb))
+        except Exception as exc:  # noqa: BLE001 - any failure is this file's problem
+            out[k] = _error_tuple(path, exc)
+    with _one_blas_thread():
+        try:
+            hashes = hash_thumbnails([d[3] for d in decoded])
+        except Exception:  # noqa: BLE001 - hash one by one to find the file that breaks the batch
+            hashes = None
+        for j, (k, path, digest, thumb) in enumerate(decoded):
+            try:
+                h = hashes[j] if hashes is not None else hash_thumbnails([thumb])[0]
+                out[k] = _ok_tuple(path, digest, thumb, h)
+            except Exception as exc:  # noqa: BLE001
+                out[k] = _error_tuple(path, exc)
+    return out
 
 
 # --- running many files -----------------------------------------------------------------

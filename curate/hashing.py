@@ -188,6 +188,19 @@ def pack_codes(bits: np.ndarray) -> np.ndarray:
     return np.packbits(flat, axis=1).view(">u8").ravel().astype(np.uint64)
 
 
+def _median_rows(values: np.ndarray) -> np.ndarray:
+    """``numpy.median(values, axis=-1)`` for finite values, without its NaN checks.
+
+    Same arithmetic as numpy: the middle value, or the mean ``(a + b) / 2`` of
+    the two middle values, so thresholds match imagehash bit for bit.
+    """
+    n = values.shape[-1]
+    part = np.partition(values, [(n - 1) // 2, n // 2], axis=-1)
+    if n % 2:
+        return part[..., n // 2]
+    return (part[..., n // 2 - 1] + part[..., n // 2]) / 2
+
+
 def _check_hash_size(hash_size: int) -> None:
     if isinstance(hash_size, bool) or not isinstance(hash_size, (int, np.integer)) or hash_size < 2:
         raise ValueError(f"hash_size must be an integer >= 2, got {hash_size!r}")
@@ -245,7 +258,7 @@ def _dct_bits(pixels: np.ndarray, hash_size: int) -> np.ndarray:
     pixels = np.asarray(pixels)
     dct = scipy.fftpack.dct(scipy.fftpack.dct(pixels, axis=-2), axis=-1)
     low = dct[..., :hash_size, :hash_size]
-    med = np.median(low.reshape(low.shape[:-2] + (-1,)), axis=-1)
+    med = _median_rows(low.reshape(low.shape[:-2] + (-1,)))
     return low > med[..., None, None]
 
 
@@ -305,7 +318,7 @@ def wavelet_hash(
     ValueError: hash_size must be a power of 2, got 6
     """
     try:
-        import pywt
+        import pywt  # noqa: F401 - fail early with an install hint
     except ImportError as exc:  # pragma: no cover - PyWavelets is a dependency
         from curate.errors import OptionalDependencyError
 
@@ -320,16 +333,28 @@ def wavelet_hash(
         image_scale = max(2 ** int(np.log2(min(grey.size))), hash_size)
     elif image_scale < hash_size or image_scale & (image_scale - 1):
         raise ValueError(f"image_scale must be a power of 2 >= hash_size, got {image_scale}")
-    ll_max_level = int(np.log2(image_scale))
-    dwt_level = ll_max_level - int(np.log2(hash_size))
-    pixels = np.asarray(grey.resize((image_scale, image_scale), LANCZOS)) / 255.0
-    if remove_max_haar_ll:
-        coeffs = list(pywt.wavedec2(pixels, "haar", level=ll_max_level))
-        coeffs[0] *= 0
-        pixels = pywt.waverec2(coeffs, "haar")
-    low = pywt.wavedec2(pixels, mode, level=dwt_level)[0]
+    pixels = np.asarray(grey.resize((image_scale, image_scale), LANCZOS))
+    low = _wavelet_low_band(pixels, hash_size, mode, remove_max_haar_ll)
     # with db4 the low band is wider than hash_size (boundary padding), as in imagehash
-    return PerceptualHash("whash", int(low.size), _bits_to_int(low > np.median(low)))
+    return PerceptualHash("whash", int(low.size), _bits_to_int(low > _median_rows(low.ravel())))
+
+
+def _wavelet_low_band(pixels: np.ndarray, hash_size: int, mode: str, remove_max_haar_ll: bool):
+    """imagehash's whash steps after the resize, on a square uint8 array or a stack of them.
+
+    A stack runs through PyWavelets along its last two axes in one call; each
+    slice comes out bit-identical to the single-image call.
+    """
+    import pywt
+
+    ll_max_level = int(np.log2(pixels.shape[-1]))
+    dwt_level = ll_max_level - int(np.log2(hash_size))
+    pixels = pixels / 255.0
+    if remove_max_haar_ll:
+        coeffs = list(pywt.wavedec2(pixels, "haar", level=ll_max_level, axes=(-2, -1)))
+        coeffs[0] *= 0
+        pixels = pywt.waverec2(coeffs, "haar", axes=(-2, -1))
+    return pywt.wavedec2(pixels, mode, level=dwt_level, axes=(-2, -1))[0]
 
 
 #: Hue bin of each 8-bit hue value: the bins of ``numpy.linspace(0, 255, 7)`` (last one closed).
@@ -505,7 +530,11 @@ def window_dct_hashes(
     for w in windows:
         if len(w) != 4 or not (0 <= w[0] < w[2] <= 1 and 0 <= w[1] < w[3] <= 1):
             raise ValueError(f"a window must be (left, top, right, bottom) fractions in [0, 1], got {w}")
-    grey = np.asarray(_grey(image), dtype=np.float32)
+    return _window_codes(np.asarray(_grey(image)), windows, hash_size, highfreq_factor)
+
+
+def _window_codes(grey: np.ndarray, windows, hash_size: int, highfreq_factor: int) -> np.ndarray:
+    grey = grey.astype(np.float32)
     height, width = grey.shape
     xs = tuple(sorted({(w[0], w[2]) for w in windows}))
     ys = tuple(sorted({(w[1], w[3]) for w in windows}))
@@ -517,7 +546,7 @@ def window_dct_hashes(
     xi = {s: i for i, s in enumerate(xs)}
     yi = {s: i for i, s in enumerate(ys)}
     low = np.stack([blocks[yi[(w[1], w[3])], xi[(w[0], w[2])]] for w in windows])
-    med = np.median(low.reshape(len(windows), -1), axis=1)
+    med = _median_rows(low.reshape(len(windows), -1))
     return pack_codes(low > med[:, None, None])
 
 
@@ -577,18 +606,57 @@ def hash_thumbnail(image: Image.Image) -> dict:
     >>> len(h["crop_hashes"])
     35
     """
-    if not isinstance(image, Image.Image):
-        raise TypeError(f"expected a PIL.Image.Image, got {type(image).__name__}")
-    rgb = image if image.mode == "RGB" else image.convert("RGB")
-    grey = rgb.convert("L")
-    dihedral = dihedral_dct_hashes(grey)
-    out = {
-        "ahash": average_hash(grey).value,
-        "dhash": difference_hash(grey).value,
-        "phash": int(dihedral[0]),
-        "whash": wavelet_hash(grey, image_scale=WHASH_IMAGE_SCALE).value,
-        "colorhash": _colour_hash(np.asarray(grey), np.asarray(rgb.convert("HSV")), COLORHASH_BINBITS).value,
-    }
-    out.update({f"phash_t{k}": int(code) for k, code in enumerate(dihedral)})
-    out["crop_hashes"] = window_dct_hashes(grey)
+    return hash_thumbnails([image])[0]
+
+
+def hash_thumbnails(images) -> list[dict]:
+    """:func:`hash_thumbnail` of several images, sharing the per-call overhead.
+
+    The DCT and wavelet steps run once over the stacked thumbnails of all
+    images; results are bit-identical to hashing each image alone.
+
+    Examples
+    --------
+    >>> imgs = [Image.radial_gradient("L"), Image.linear_gradient("L")]
+    >>> [h["phash"] for h in hash_thumbnails(imgs)] == [dct_hash(i).value for i in imgs]
+    True
+    """
+    n = HASH_SIZE
+    rgbs, greys = [], []
+    for image in images:
+        if not isinstance(image, Image.Image):
+            raise TypeError(f"expected a PIL.Image.Image, got {type(image).__name__}")
+        rgb = image if image.mode == "RGB" else image.convert("RGB")
+        rgbs.append(rgb)
+        greys.append(rgb.convert("L"))
+    if not greys:
+        return []
+    # each thumbnail exactly as imagehash makes it: LANCZOS resize of the "L" image
+    a = np.stack([np.asarray(g.resize((n, n), LANCZOS)) for g in greys])
+    d = np.stack([np.asarray(g.resize((n + 1, n), LANCZOS)) for g in greys])
+    t = np.stack([np.asarray(g.resize((n * PHASH_HIGHFREQ_FACTOR,) * 2, LANCZOS)) for g in greys])
+    w = _wavelet_low_band(
+        np.stack([np.asarray(g.resize((WHASH_IMAGE_SCALE,) * 2, LANCZOS)) for g in greys]), n, "haar", True
+    )
+    m = len(greys)
+    a_bits = np.stack([a[i] > np.mean(a[i]) for i in range(m)])  # numpy.mean per image, as imagehash
+    d_bits = d[:, :, 1:] > d[:, :, :-1]
+    w_bits = w > _median_rows(w.reshape(m, -1))[:, None, None]
+    t_bits = _dct_bits(np.stack([dihedral_arrays(x) for x in t]), n)  # (m, 8, n, n)
+    codes = pack_codes(np.concatenate([a_bits[:, None], d_bits[:, None], w_bits[:, None], t_bits], axis=1)
+                       .reshape(m * 11, n, n)).reshape(m, 11)
+    out = []
+    for i in range(m):
+        c = [int(v) for v in codes[i]]
+        grey_pixels = np.asarray(greys[i])
+        h = {
+            "ahash": c[0],
+            "dhash": c[1],
+            "phash": c[3],
+            "whash": c[2],
+            "colorhash": _colour_hash(grey_pixels, np.asarray(rgbs[i].convert("HSV")), COLORHASH_BINBITS).value,
+        }
+        h.update({f"phash_t{k}": c[3 + k] for k in range(8)})
+        h["crop_hashes"] = _window_codes(grey_pixels, CROP_WINDOWS, n, PHASH_HIGHFREQ_FACTOR)
+        out.append(h)
     return out
