@@ -20,7 +20,7 @@ def test_report_fixture_does_not_fail(leakage_report):
 def _run(pytester, manifest):
     pytester.makeconftest('pytest_plugins = ["curate.pytest_plugin"]')
     pytester.makepyfile(test_split=TEST_FILE.format(manifest=manifest))
-    return pytester.runpytest_subprocess("-q", "-p", "no:cacheprovider")
+    return pytester.runpytest("-q", "-p", "no:cacheprovider")
 
 
 def test_plugin_passes_a_clean_manifest(pytester, tmp_path):
