@@ -3,8 +3,9 @@
 Starts JupyterLab on 127.0.0.1 (a free port, a random token, a temporary root
 folder holding a copy of notebooks/02_near_duplicates_review.ipynb), drives it
 with Playwright's sync API and the system Chromium (no browser download), runs
-every cell, clicks a decision button in the review widget, and then checks
-through the curate API that the decision is in the workspace. A screenshot of
+every cell, clicks a decision button in the review widget and types a decision
+key into its key box, and then checks through the curate API that both
+decisions are in the workspace. A screenshot of
 the widget is saved to .ci/artifacts/review-widget.png.
 
 Skipped only when /usr/bin/chromium is missing outside CI; with CI=true a
@@ -214,10 +215,20 @@ def test_review_notebook_decision_reaches_the_store(lab):
             while decided.empty and time.monotonic() < deadline:
                 time.sleep(0.5)
                 decided = current_decisions(ws)
+            assert len(decided) == 1, "the click did not reach the workspace within 60 s"
+            # the keyboard path: type "2" (same lesion) into the key box of the widget
+            keys = page.locator(".curate-review .curate-keys input").first
+            keys.click()
+            keys.press_sequentially("2", delay=50)
+            deadline = time.monotonic() + 60
+            while len(current_decisions(ws)) < 2 and time.monotonic() < deadline:
+                time.sleep(0.5)
+            # and the widget says so
+            page.locator(".curate-review").get_by_text("saved: same lesion").first.wait_for(
+                state="visible", timeout=60_000)
             page.screenshot(path=str(ARTIFACTS / "review-notebook-after-click.png"), full_page=False)
         finally:
             browser.close()
-    assert len(decided) == 1, "the click did not reach the workspace within 60 s"
     row = decided.iloc[0]
     assert row["decision"] == "different_lesions" and row["reviewer"] == "browser test"
     # it is the pair the widget showed first: the most uncertain one in the queue
@@ -226,3 +237,6 @@ def test_review_notebook_decision_reaches_the_store(lab):
     first = ReviewSession(ws, reviewer="check").pairs().iloc[0]
     assert (row["image_a"], row["image_b"]) == (first["image_a"], first["image_b"])
     assert SCREENSHOT.stat().st_size > 10_000
+    after_keys = current_decisions(ws)
+    assert len(after_keys) == 2, "typing '2' into the key box did not record a decision"
+    assert set(after_keys["decision"]) == {"different_lesions", "same_lesion"}
