@@ -120,11 +120,14 @@ def read_keep_manifest(path: str | os.PathLike, catalog: pd.DataFrame) -> tuple[
     equal a catalog path; a relative one must equal the end of exactly one
     catalog path. Unmatched rows are counted, not fatal (the file may be gone).
     """
-    from curate.manifest_io import read_manifest
+    from curate.manifest_io import read_manifest, read_table, table_path
 
-    table = read_manifest(path)
-    if "split" not in table.columns:
-        raise ValueError(f"{path}: no split column")
+    raw = read_table(table_path(path))
+    lower = {str(c).strip().lower(): c for c in raw.columns}
+    if "sha256" in lower and "split" in lower:  # a digest-keyed table needs no path column
+        table = pd.DataFrame({"sha256": raw[lower["sha256"]], "split": raw[lower["split"]]})
+    else:
+        table = read_manifest(path)  # path + split, in any of the usual spellings
     counts = {"rows": len(table), "matched_rows": 0, "unmatched_rows": 0}
     if "sha256" in table.columns and table["sha256"].notna().all():
         by_sha = catalog.dropna(subset=["sha256"]).groupby("sha256")["image_id"].apply(list)

@@ -268,3 +268,119 @@ def test_propose_split_errors_name_the_problem():
     bad.loc[3, "group_id"] = None
     with pytest.raises(ValueError, match="image_id 4"):
         propose_split(bad)
+
+
+# --- workspace and command line ----------------------------------------------------------
+
+import json  # noqa: E402
+
+from click.testing import CliRunner  # noqa: E402
+
+from curate.cli import main  # noqa: E402
+from curate.split_store import build_groups, read_keep_manifest, split_workspace  # noqa: E402
+from curate.store import Workspace, utc_now  # noqa: E402
+
+
+def make_workspace(path, rows):
+    """rows: (path, source, sha256, patient_id, lesion_id, label)."""
+    ws = Workspace.create(path)
+    now = utc_now()
+    with ws.transaction() as con:
+        con.executemany(
+            "INSERT INTO images(path, root, source, sha256, patient_id, lesion_id, label, first_seen, "
+            "last_seen, decodable) VALUES (?, '/data', ?, ?, ?, ?, ?, ?, ?, 1)",
+            [(*r, now, now) for r in rows])
+    return ws
+
+
+def clean_rows(n=60):
+    labels = ["mel", "nev", "bcc"]
+    return [(f"/data/s{i // 2 % 2}/img{i:03d}.jpg", f"s{i // 2 % 2}", f"{i:064x}", f"p{i // 2}", None, labels[(i // 2) % 3])
+            for i in range(n)]
+
+
+def test_workspace_split_writes_tables_and_parameters(tmp_path):
+    ws = make_workspace(tmp_path / "ws", clean_rows())
+    sa = split_workspace(ws, fractions=[0.6, 0.2, 0.2], names=["tr", "va", "te"], stratify=["label"],
+                         random_state=4)
+    stored = ws.read_sql("SELECT image_id, split FROM splits ORDER BY image_id")
+    assert stored["split"].tolist() == sa.splits.tolist()
+    assert ws.read_sql("SELECT COUNT(*) AS n FROM groups")["n"].iloc[0] == 60
+    params = json.loads(ws.get_meta("split_parameters"))
+    assert params["fractions"] == [0.6, 0.2, 0.2] and params["names"] == ["tr", "va", "te"]
+    assert params["stratify"] == ["label"] and params["random_state"] == 4 and params["keep"] is None
+    # same seed, same split, byte for byte
+    again = split_workspace(ws, fractions=[0.6, 0.2, 0.2], names=["tr", "va", "te"], stratify=["label"],
+                            random_state=4)
+    pd.testing.assert_series_equal(sa.splits, again.splits)
+
+
+def test_keep_manifest_by_sha256_and_by_relative_path(tmp_path):
+    ws = make_workspace(tmp_path / "ws", clean_rows(40))
+    first = split_workspace(ws, fractions=[0.7, 0.3], random_state=0)
+    cat = ws.catalog().set_index("image_id")
+    by_sha = tmp_path / "m.csv"
+    pd.DataFrame({"sha256": cat["sha256"], "split": first.splits}).to_csv(by_sha, index=False)
+    by_path = tmp_path / "p.csv"
+    rel = cat["path"].str.replace("/data/", "", regex=False)
+    pd.DataFrame({"path": rel, "split": first.splits}).to_csv(by_path, index=False)
+    for manifest in (by_sha, by_path):
+        keep, counts = read_keep_manifest(manifest, ws.catalog())
+        assert counts == {"rows": 40, "matched_rows": 40, "unmatched_rows": 0}
+        pd.testing.assert_series_equal(keep.sort_index(), first.splits, check_names=False, check_index_type=False)
+    # grow the workspace: the kept images stay put, the new ones are placed around them
+    now = utc_now()
+    with ws.transaction() as con:
+        con.executemany("INSERT INTO images(path, root, source, sha256, patient_id, lesion_id, label, first_seen,"
+                        " last_seen) VALUES (?, '/data', 's0', ?, ?, NULL, 'mel', ?, ?)",
+                        [(f"/data/new{i}.jpg", f"{1000 + i:064x}", f"q{i}", now, now) for i in range(20)]
+                        + [("/data/new_p0.jpg", f"{2000:064x}", "p0", now, now)])
+    second = split_workspace(ws, fractions=[0.7, 0.3], random_state=9, keep=by_sha)
+    pd.testing.assert_series_equal(second.splits.loc[first.splits.index], first.splits)
+    assert second.report.counts() == {"joined_locked_group": 1}
+    assert json.loads(ws.get_meta("split_parameters"))["keep"] == str(by_sha)
+
+
+def test_keep_manifest_with_unknown_split_name_is_an_input_error(tmp_path):
+    ws = make_workspace(tmp_path / "ws", clean_rows(10))
+    bad = tmp_path / "bad.csv"
+    pd.DataFrame({"sha256": [f"{0:064x}"], "split": ["holdout"]}).to_csv(bad, index=False)
+    with pytest.raises(ValueError, match="holdout"):
+        split_workspace(ws, fractions=[0.5, 0.5], keep=bad)
+
+
+def test_build_groups_records_findings_as_problems(tmp_path):
+    rows = clean_rows(10) + [(f"/data/u{i}.jpg", "s0", f"{500 + i:064x}", "unknown", None, "mel") for i in range(3)]
+    ws = make_workspace(tmp_path / "ws", rows)
+    grouping = build_groups(ws)
+    assert grouping.report.counts() == {"placeholder_id": 1}
+    assert ws.problems("groups")["kind"].tolist() == ["placeholder_id"]
+    assert json.loads(ws.get_meta("group_parameters"))["groups"] == grouping.n_groups == 8
+
+
+def test_cli_exit_codes(tmp_path, monkeypatch):
+    runner = CliRunner()
+    clean = make_workspace(tmp_path / "clean", clean_rows(60))
+    flagged = make_workspace(tmp_path / "flagged", clean_rows(30) + [("/data/u.jpg", "s0", "ab" * 32, "0", None, "rare")])
+    result = runner.invoke(main, ["groups", str(clean.path)])
+    assert result.exit_code == 0, result.output
+    assert "60 images in 30 groups" in result.output
+    result = runner.invoke(main, ["groups", str(flagged.path)])
+    assert result.exit_code == 1 and "placeholder_id" in result.output
+    result = runner.invoke(main, ["split", str(clean.path), "--stratify", "label", "--seed", "2"])
+    assert result.exit_code == 0, result.output
+    result = runner.invoke(main, ["split", str(flagged.path), "--stratify", "label"])
+    assert result.exit_code == 1 and "class_too_small" in result.output and "label=rare" in result.output
+    result = runner.invoke(main, ["split", str(clean.path), "--fractions", "0.7,0.7"])
+    assert result.exit_code == 2 and "sum to 1" in result.output
+    result = runner.invoke(main, ["split", str(clean.path), "--stratify", "node"])
+    assert result.exit_code == 2 and "curate taxonomy" in result.output
+    result = runner.invoke(main, ["groups", str(tmp_path)])
+    assert result.exit_code == 2 and "not a curate workspace" in result.output
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("boom")
+
+    monkeypatch.setattr("curate.split_store.split_workspace", broken)
+    result = runner.invoke(main, ["split", str(clean.path)])
+    assert result.exit_code == 3
