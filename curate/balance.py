@@ -382,6 +382,8 @@ def plot_balance(table: pd.DataFrame, *, measure: str = "lesions", min_lesions: 
     if min_lesions is None and measure == "lesions":
         min_lesions = table.attrs.get("min_lesions")
     labels = ["  " * int(d) + str(n) for n, d in zip(table.index, table["depth"])]
+    width = max((len(x) for x in labels), default=0)
+    labels = [x.ljust(width) for x in labels]  # monospace, right-aligned ticks: keeps the indent
     height = max(3.0, 0.22 * len(table) + 1.2)
     fig = Figure(figsize=(4.2 * len(panels) + 2.5, height), layout="constrained")
     FigureCanvasAgg(fig)
