@@ -299,9 +299,9 @@ def find_leaks(
             raise ValueError(f"{column[:-3]}_scope must be one of {', '.join(allowed)}; got {scope!r}")
         checks[reason.value] = column in t.columns
         if column in t.columns:
-            placeholder = t[column].map(
-                lambda v: v is None or is_placeholder_id(v) or v.casefold() in extra_placeholders
-            ).astype(bool)
+            values = t[column].dropna().unique()
+            flagged = {v for v in values if is_placeholder_id(v) or v.casefold() in extra_placeholders}
+            placeholder = t[column].isna() | t[column].isin(flagged)
             ignored.append(_spanning_placeholders(t[placeholder & t[column].notna()], column))
             key = _scoped_key(t, column, scope).where(~placeholder, None)
             found.append(_shared_key_leaks(t, key, reason, order))
@@ -384,10 +384,10 @@ def _shared_key_leaks(
     sub = sub.assign(main=sub[key].map(main)).sort_values([key, "path"], kind="stable")
     anchor_rows = sub[sub["split"] == sub["main"]].drop_duplicates(key).set_index(key)
     anchors, anchor_values = anchor_rows["path"], anchor_rows["_value"]
-    evidence = {
-        k: {"images_per_split": {s: int(n) for s, n in zip(g["split"], g["n"])}}
-        for k, g in per_split.sort_values("rank").groupby(key)
-    }
+    evidence: dict = {}
+    ordered = per_split.sort_values([key, "rank"])
+    for k, split, n in zip(ordered[key], ordered["split"], ordered["n"]):
+        evidence.setdefault(k, {"images_per_split": {}})["images_per_split"][split] = int(n)
     outside = sub[sub["split"] != sub["main"]]
     return pd.DataFrame(
         {
