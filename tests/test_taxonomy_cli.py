@@ -127,3 +127,41 @@ def test_help_of_each_command():
     for name in ("taxonomy", "balance", "classes", "skin-tone"):
         r = run(name, "--help")
         assert r.exit_code == 0 and "Exit codes" in r.output
+
+
+def _tiny_workspace(path, labels, lesions):
+    from curate.store import utc_now
+
+    ws = Workspace.create(path)
+    now = utc_now()
+    with ws.transaction() as con:
+        con.executemany(
+            "INSERT INTO images(path, root, source, label, lesion_id, patient_id, first_seen, last_seen) "
+            "VALUES (?, ?, 's', ?, ?, 'P1', ?, ?)",
+            [(f"/x/{i}.jpg", "/x", lab, les, now, now) for i, (lab, les) in enumerate(zip(labels, lesions))],
+        )
+    return ws
+
+
+def test_taxonomy_exit_codes_on_a_hand_made_workspace(tmp_path):
+    ws = _tiny_workspace(tmp_path / "ws", ["BCC", "bcc", "Mole", "???"], ["L1", "L1", "L2", "L3"])
+    m = tmp_path / "m.csv"
+    m.write_text("raw_label,node,status\nBCC,basal_cell_carcinoma,confirmed\nmole,naevus,confirmed\n")
+    r = run("taxonomy", ws.path, "--labels", m)
+    assert r.exit_code == 1 and "???" in r.output  # one label unmapped, listed
+    problems = ws.problems("taxonomy")
+    assert problems["kind"].tolist() == ["unmapped_label"]
+    m.write_text(m.read_text() + "???,skin_condition,confirmed\n")
+    r = run("taxonomy", ws.path, "--labels", m)
+    assert r.exit_code == 0, r.output
+    assert ws.problems("taxonomy").empty
+    # a lesion whose images carry two nodes is a conflict to review (exit 1)
+    m.write_text("raw_label,node,status\nBCC,basal_cell_carcinoma,confirmed\n"
+                 "bcc,basal_cell_carcinoma,confirmed\nmole,naevus,confirmed\n???,naevus,confirmed\n")
+    ws2 = _tiny_workspace(tmp_path / "ws2", ["BCC", "mole"], ["L1", "L1"])
+    r = run("taxonomy", ws2.path, "--labels", m)
+    assert r.exit_code == 1 and "lesion" in r.output and "disjoint" in r.output
+    # balance before any mapping is an input error
+    ws3 = _tiny_workspace(tmp_path / "ws3", ["BCC"], ["L1"])
+    assert run("balance", ws3.path).exit_code == 2
+    assert run("classes", ws3.path, "--max-images", 5).exit_code == 2
