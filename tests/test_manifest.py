@@ -393,3 +393,23 @@ def test_written_manifests_get_the_usual_file_mode(tmp_path):
     umask = os.umask(0)
     os.umask(umask)
     assert files["csv"].stat().st_mode & 0o777 == 0o666 & ~umask
+
+
+def test_check_of_a_frozen_manifest_follows_the_recorded_id_scope(tmp_path):
+    # two clinics both number a patient "P1": different people, so freezing them apart is fine
+    rows = [
+        {"seed": 1, "patient": "P1", "split": "train", "source": "clinic_a"},
+        {"seed": 2, "patient": "P1", "split": "test", "source": "clinic_b"},
+        {"seed": 3, "patient": "P2", "split": "train", "source": "clinic_a"},
+    ]
+    ws = make_workspace(tmp_path, rows)
+    result = freeze_split(ws, "v1", progress=False)
+    assert result.manifest.leak_check["patient_scope"] == "source"
+    from curate.leakage_check import check_leakage
+
+    assert check_leakage(result.files["csv"], near_duplicates=False, progress=False).ok
+    # without its sidecar the same table is read cautiously, with one id space
+    alone = tmp_path / "alone.csv"
+    shutil.copy(result.files["csv"], alone)
+    report = check_leakage(alone, root=tmp_path / "data", near_duplicates=False, progress=False)
+    assert report.counts() == {"same_patient": 1}
