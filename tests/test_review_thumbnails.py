@@ -102,6 +102,10 @@ def test_cache_makes_each_thumbnail_once_keyed_by_content(tmp_path):
     assert cache.made == 1
     # a cache of another size is separate
     assert ThumbnailCache(tmp_path / "thumbs", size=64).get(path, sha).size == (64, 64)
+    # recent thumbnails are also kept decoded in memory (the review's prefetch lands there)
+    cache.path_for(sha).unlink()
+    assert cache.get(path, sha) is cache.get(path, sha) and cache.made == 1
+    assert ThumbnailCache(tmp_path / "thumbs", size=128, memory_items=0).get(path, sha) is not t
     # no temporary files left behind
     assert not list((tmp_path / "thumbs").rglob(".tmp-*"))
     # ensure() makes only the missing ones
