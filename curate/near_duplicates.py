@@ -27,8 +27,11 @@ How a pair is judged (the rule is written out in ``docs/near_duplicates.md``):
    difference hash agree and so does the average or the wavelet hash (3 or 4 of
    4 families); under a rotation/flip, the DCT (within
    :data:`TURNED_PHASH_THRESHOLD`), average and wavelet (within
-   :data:`TURNED_WHASH_THRESHOLD`) hashes all agree (3 of 3); or a crop window matches within :data:`CROP_NEAR_DISTANCE` with colour
-   hashes within :data:`CROP_COLOUR_TOLERANCE`. Everything else found is
+   :data:`TURNED_WHASH_THRESHOLD`) hashes all agree (3 of 3) and add up to at
+   most :data:`TURNED_TOTAL`; or a crop window matches within
+   :data:`CROP_NEAR_DISTANCE`, colour hashes within
+   :data:`CROP_COLOUR_TOLERANCE` and the average or wavelet hash within
+   :data:`CROP_LAYOUT_DISTANCE`. Everything else found is
    ``possible``: a person should look.
 4. **Score** in [0, 1]: one minus the mean distance of the compared structural
    hashes over 32 bits (the expected distance of unrelated codes), for the best
@@ -64,12 +67,16 @@ TURNED_PHASH_THRESHOLD = 4
 #: The wavelet hash's bit grid follows a rotation less exactly than the average hash's
 #: (measured: up to 8 bits on drawn test images), so it gets a wider allowance when rotated.
 TURNED_WHASH_THRESHOLD = 8
+#: Under a rotation/flip the DCT, average and wavelet distances must also add up to at most this.
+TURNED_TOTAL = 10
 #: Largest colour hash distance (bits) for colour-compatible images.
-COLOUR_TOLERANCE = 6
+COLOUR_TOLERANCE = 8
 #: Largest crop-window DCT hash distance (bits) for a confident crop match ...
 CROP_NEAR_DISTANCE = 3
-#: ... with colour hashes at most this far apart (a crop keeps the colour mix).
+#: ... with colour hashes at most this far apart (a crop keeps the colour mix) ...
 CROP_COLOUR_TOLERANCE = 2
+#: ... and the average or wavelet hash (as stored) within this many bits.
+CROP_LAYOUT_DISTANCE = 8
 #: Expected Hamming distance of unrelated 64-bit codes, used to scale the score.
 UNRELATED_BITS = 32.0
 
@@ -188,8 +195,10 @@ def _candidate_hash_pairs(h: pd.DataFrame, radius: int, workers) -> np.ndarray:
     found.append((owner[i], j))
     crops, crop_owner = _crop_table(h)
     if crops.size:
-        i, j, _ = radius_query(crops, phash, radius, workers=workers)
-        found.append((crop_owner[i], j))
+        # a crop window of one image against any rotation/flip of the other (crop + rotation)
+        every_turn = np.concatenate([phash, turned])
+        i, j, _ = radius_query(crops, every_turn, radius, workers=workers)
+        found.append((crop_owner[i], j % n))
     a = np.concatenate([f[0] for f in found])
     b = np.concatenate([f[1] for f in found])
     keep = a != b
@@ -199,7 +208,11 @@ def _candidate_hash_pairs(h: pd.DataFrame, radius: int, workers) -> np.ndarray:
 
 
 def _best_crop_distance(h: pd.DataFrame, p: np.ndarray, q: np.ndarray) -> np.ndarray:
-    """Smallest DCT distance between a crop window of one image and the other's whole image."""
+    """Smallest DCT distance between a crop window of one image and the other's whole image.
+
+    The other image is taken in each of its 8 rotations/flips, so a crop that was
+    also turned is matched.
+    """
     best = np.full(p.shape[0], 64, dtype=np.int64)
     if "crop_hashes" not in h.columns or p.size == 0:
         return best
@@ -210,9 +223,11 @@ def _best_crop_distance(h: pd.DataFrame, p: np.ndarray, q: np.ndarray) -> np.nda
         return best
     table = np.stack([np.asarray(c, dtype=np.uint64) for c in crops])  # (n, windows)
     w = table.shape[1]
-    for own, other in ((p, q), (q, p)):
-        d = hamming_distance(table[own].ravel(), np.repeat(phash[other], w)).reshape(-1, w)
-        best = np.minimum(best, d.min(axis=1))
+    for t in range(8):
+        turned = phash if t == 0 else _codes(h, f"phash_t{t}")
+        for own, other in ((p, q), (q, p)):
+            d = hamming_distance(table[own].ravel(), np.repeat(turned[other], w)).reshape(-1, w)
+            best = np.minimum(best, d.min(axis=1))
     return best
 
 
@@ -247,8 +262,12 @@ def _score_hash_pairs(h: pd.DataFrame, pq: np.ndarray, radius: int) -> pd.DataFr
     rotated = best_t != 0
     # rotated/flipped: all 3 comparable families agree, the DCT hash more tightly
     near_turned = (rotated & (d_phash_t <= TURNED_PHASH_THRESHOLD) & (d_ahash_t <= th["ahash"])
-                   & (d_whash_t <= TURNED_WHASH_THRESHOLD) & colour_ok)
-    near_crop = (d_crop <= CROP_NEAR_DISTANCE) & (d["colorhash"] <= CROP_COLOUR_TOLERANCE)
+                   & (d_whash_t <= TURNED_WHASH_THRESHOLD)
+                   & (d_phash_t + d_ahash_t + d_whash_t <= TURNED_TOTAL) & colour_ok)
+    # crop: a tight window match, compatible colour, and the coarse brightness layout (average
+    # or wavelet hash as stored) still roughly the same
+    near_crop = ((d_crop <= CROP_NEAR_DISTANCE) & (d["colorhash"] <= CROP_COLOUR_TOLERANCE)
+                 & ((d["ahash"] <= CROP_LAYOUT_DISTANCE) | (d["whash"] <= CROP_LAYOUT_DISTANCE)))
     score = np.clip(1.0 - np.minimum.reduce([mean0, np.where(rotated, mean_t, mean0), mean_c])
                     / UNRELATED_BITS, 0.0, 1.0)
     use_turn = rotated & ~near_stored & (mean_t < mean0)
