@@ -36,7 +36,7 @@ from curate.report import Finding, IngestIssue, Reason, Report
 HASH_VERSION = 1
 #: Size asked of ``Image.draft``: the decode keeps both sides at least this long.
 DRAFT_SIZE = THUMBNAIL_MIN_SIDE
-#: Files per task sent to a worker.
+#: Most files per task sent to a worker (fewer when there are few files per worker).
 CHUNK_SIZE = 16
 
 #: Columns of the hash frame, after ``sha256`` (and ``path`` for :func:`hash_files`).
@@ -228,7 +228,11 @@ def _run_chunks(items, *, workers, client, progress, desc):
     """Yield each chunk's result list as it finishes, locally or on a Dask cluster."""
     from tqdm.auto import tqdm
 
-    chunks = _chunks(list(items), CHUNK_SIZE)
+    items = list(items)
+    # at least ~4 chunks per worker so the last ones do not leave a core idle
+    parallel = workers if client is None else max(1, sum(client.nthreads().values()))
+    size = max(1, min(CHUNK_SIZE, -(-len(items) // (4 * parallel))))
+    chunks = _chunks(items, size)
     bar = tqdm(total=len(items), desc=desc, unit="img", disable=not progress)
     try:
         if client is not None:
