@@ -384,3 +384,26 @@ def test_cli_exit_codes(tmp_path, monkeypatch):
     monkeypatch.setattr("curate.split_store.split_workspace", broken)
     result = runner.invoke(main, ["split", str(clean.path)])
     assert result.exit_code == 3
+
+
+def test_stratify_by_taxonomy_depth_and_skin_tone_bin(tmp_path):
+    from curate.split_store import split_catalog
+    from curate.taxonomy import example_taxonomy
+
+    ws = make_workspace(tmp_path / "ws", clean_rows(40))
+    leaves = ["compound_naevus", "dermal_naevus", "nodular_melanoma", "basal_cell_carcinoma"]
+    cat = ws.catalog()
+    with ws.transaction() as con:
+        con.executemany("INSERT INTO image_nodes(image_id, node, training_class) VALUES (?, ?, ?)",
+                        [(i, leaves[i % 4], "x") for i in cat["image_id"]])
+        con.executemany("INSERT INTO skin_tone(sha256, ita, ita_bin) VALUES (?, 30.0, ?)",
+                        [(d, ["light", "tan"][k % 2]) for k, d in enumerate(cat["sha256"])])
+    sa = split_workspace(ws, fractions=[0.5, 0.5], stratify=["node:1", "ita_bin"], random_state=0)
+    tree = example_taxonomy()
+    table = sa.class_table
+    depth1 = table.loc[table["column"] == "node:1", "value"].unique()
+    assert sorted(depth1) == sorted({tree.ancestor_at_depth(leaf, 1) for leaf in leaves})
+    assert set(table.loc[table["column"] == "ita_bin", "value"]) == {"light", "tan"}
+    assert "ita_bin" in split_catalog(ws).columns
+    with pytest.raises(ValueError, match="depth"):
+        split_workspace(ws, fractions=[0.5, 0.5], stratify=["node:x"])
