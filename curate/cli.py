@@ -324,8 +324,10 @@ def freeze_command(workspace, name, root, pseudonymise, salt, salt_file, allow_l
               help="Seed; the same seed gives byte-identical files.")
 @click.option("--workers", type=click.IntRange(min=1), default=None,
               help="Processes drawing images (default: up to 2).")
+@click.option("--image-scale", type=click.FloatRange(0.1, 8), default=1.0, show_default=True,
+              help="Multiplies the picture sizes (600x450 clinical, 512x512 dermoscopic).")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bars.")
-def demo_command(out, n_images, random_state, workers, quiet) -> int:
+def demo_command(out, n_images, random_state, workers, image_scale, quiet) -> int:
     """Generate the demo scenario in OUT, then run every pipeline step that exists on it.
 
     The scenario is invented: a regional teledermatology network pooling
@@ -345,7 +347,7 @@ def demo_command(out, n_images, random_state, workers, quiet) -> int:
 
     try:
         scenario = generate_scenario(out, n_images=n_images, random_state=random_state,
-                                     progress=not quiet, workers=workers)
+                                     progress=not quiet, workers=workers, image_scale=image_scale)
     except FileExistsError as exc:  # a folder that is not an earlier demo: nothing was touched
         click.echo(f"error: {exc}", err=True)
         return EXIT_INPUT
@@ -357,7 +359,7 @@ def demo_command(out, n_images, random_state, workers, quiet) -> int:
 # --- taxonomy ----------------------------------------------------------------------
 
 
-def _taxonomy_or_input_error(ws, tree):
+def _load_taxonomy(ws, tree):
     from curate.taxonomy_workspace import workspace_taxonomy
 
     return workspace_taxonomy(ws, tree)
@@ -399,7 +401,7 @@ def taxonomy_command(workspace, tree, labels, propose, accept_proposed, max_rows
     from curate.taxonomy_workspace import map_workspace_labels, workspace_conflicts
 
     ws = _open_workspace(workspace)
-    taxonomy = _taxonomy_or_input_error(ws, tree)
+    taxonomy = _load_taxonomy(ws, tree)
     result = map_workspace_labels(ws, taxonomy, labels, propose=propose, accept_proposed=accept_proposed,
                                   tree_path=tree)
     click.echo(f"taxonomy: {len(taxonomy)} nodes, {len(taxonomy.leaves)} leaves ({taxonomy.source})")
@@ -449,11 +451,13 @@ def balance_command(workspace, tree, depth, by, min_lesions, max_share_ratio, pl
 
     Exit code 1 means some node is flagged.
     """
+    import pandas as pd
+
     from curate.balance import balance, plot_balance, tree_view
     from curate.taxonomy_workspace import node_frame
 
     ws = _open_workspace(workspace)
-    taxonomy = _taxonomy_or_input_error(ws, tree)
+    taxonomy = _load_taxonomy(ws, tree)
     frame = node_frame(ws)
     if frame["node"].notna().sum() == 0:
         raise ValueError(f"{workspace}: no image has a taxonomy node yet; run `curate taxonomy` first")
@@ -462,7 +466,7 @@ def balance_command(workspace, tree, depth, by, min_lesions, max_share_ratio, pl
         raise ValueError(f"{workspace}: no image has a {by!r} value; {hint}".rstrip("; "))
     table = balance(frame, taxonomy, by=by, depth=depth, min_lesions=min_lesions,
                     max_share_ratio=max_share_ratio)
-    with __import__("pandas").option_context("display.width", 250, "display.max_columns", 60):
+    with pd.option_context("display.width", 250, "display.max_columns", 60):
         click.echo(tree_view(table).to_string(index=False))
     if table.attrs["unmapped_images"]:
         click.echo(f"({table.attrs['unmapped_images']} images without a node are not counted)")
@@ -509,7 +513,7 @@ def classes_command(workspace, max_images, min_images, out_dir, depths, tree) ->
     from curate.training_classes import propose_classes
 
     ws = _open_workspace(workspace)
-    taxonomy = _taxonomy_or_input_error(ws, tree)
+    taxonomy = _load_taxonomy(ws, tree)
     frame = node_frame(ws)
     if frame["node"].notna().sum() == 0:
         raise ValueError(f"{workspace}: no image has a taxonomy node yet; run `curate taxonomy` first")

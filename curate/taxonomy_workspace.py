@@ -98,7 +98,6 @@ def map_workspace_labels(
         proposals = propose_mappings(labels, taxonomy, known=known)
         mapping = merge_mappings(mapping, proposals)
         write_mapping(mapping, mapping_path)
-    # refresh image counts in the file's memory copy only; the file keeps the user's text
     nodes, unmapped = apply_mapping(labels, mapping, accept_proposed=accept_proposed)
     rows = list(zip(catalog["image_id"].astype(int), nodes.where(nodes.notna(), None)))
     findings = [
