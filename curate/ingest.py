@@ -13,6 +13,9 @@ again:
   and ``mtime_ns`` are unchanged, so an unchanged tree costs one ``stat`` per
   file and no file is opened; a changed file is read again;
 - marks the source's files that are gone ``present = 0`` (rows are never deleted);
+- sets ``last_seen`` only on rows it writes (new, changed, moved, back, new
+  metadata): an unchanged tree costs no row writes. The time of a source's
+  last scan is in the ``meta`` table under ``last_scan:<source>``;
 - replaces the source's previous ``scan`` rows in the ``problems`` table, so
   that table says what is wrong now;
 - with metadata given, sets every file's metadata from it (a file the CSV no
@@ -281,7 +284,7 @@ def _scan(ws, source, root, entries, meta_rows, findings, progress, started, wor
     result = ScanResult(source=source, root=root, files_seen=len(entries))
     now = utc_now()
     with_meta = meta_rows is not None
-    known = _known_rows(ws)
+    known = _known_rows(ws, with_meta)
     to_read, reused = [], []
     for entry in entries:
         old = known.get(entry.path)
@@ -330,7 +333,9 @@ def _scan(ws, source, root, entries, meta_rows, findings, progress, started, wor
             updates,
         )
         con.executemany("UPDATE images SET present = 0 WHERE image_id = ?", gone)
-        con.execute("UPDATE images SET last_seen = ? WHERE source = ? AND present = 1", (now, source))
+        con.execute(
+            "INSERT OR REPLACE INTO meta(key, value) VALUES (?, ?)", (f"last_scan:{source}", now)
+        )
         con.execute("DELETE FROM problems WHERE step = ? AND source = ?", (CHECK, source))
         record_problems(con, CHECK, findings, source=source)
         groups, files = con.execute(
@@ -387,13 +392,13 @@ def _at_row(f: Finding, csv_path: str, row: MetadataRow) -> Finding:
     return Finding(f.check, f.reason, f"{row.path!r}: {f.message}", file=csv_path, row=row.row)
 
 
-def _known_rows(ws) -> dict[str, tuple]:
-    """path -> (image_id, size, mtime_ns, has digest, present, source, root, *metadata)."""
+def _known_rows(ws, with_meta: bool) -> dict[str, tuple]:
+    """path -> (image_id, size, mtime_ns, has digest, present, source, root[, *metadata])."""
+    meta = "".join(f", {c}" for c in META_COLUMNS) if with_meta else ""
     con = ws.connect()
     try:
         cur = con.execute(
-            "SELECT path, image_id, size, mtime_ns, sha256 IS NOT NULL, present, source, root, "
-            f"{', '.join(META_COLUMNS)} FROM images"
+            f"SELECT path, image_id, size, mtime_ns, sha256 IS NOT NULL, present, source, root{meta} FROM images"
         )
         return {r[0]: r[1:] for r in cur}
     finally:

@@ -53,7 +53,7 @@ CREATE TABLE images (
     capture_date  TEXT,
     present       INTEGER NOT NULL DEFAULT 1,
     first_seen    TEXT NOT NULL,
-    last_seen     TEXT NOT NULL
+    last_seen     TEXT NOT NULL           -- last scan that wrote this row (meta last_scan:<source>: last scan)
 );
 CREATE INDEX images_sha256 ON images(sha256);
 CREATE INDEX images_source ON images(source);

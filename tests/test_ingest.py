@@ -201,6 +201,7 @@ def test_rescan_of_an_unchanged_tree_opens_no_file(ws, tmp_path, counting):
     opened.calls.clear()
     second = scan_folder(ws, folder, progress=False)
     assert digest.calls == [] and opened.calls == []
+    assert ws.get_meta("last_scan:clinic") is not None  # the source's scan time, not a row write
     assert (second.new, second.redigested, second.reused) == (0, 0, first.files_seen)
     # the stored problems of unchanged files are reported again, not lost
     assert second.report.counts() == first.report.counts()
