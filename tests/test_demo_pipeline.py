@@ -6,6 +6,7 @@ import json
 import pandas as pd
 import pytest
 from click.testing import CliRunner
+from PIL import Image
 
 from curate.cli import main
 from curate.demo import generate_scenario
@@ -102,7 +103,10 @@ def test_sources_json_written_by_the_demo_reads_back(ran):
 
 
 def test_curate_demo_runs_and_exits_zero(tmp_path):
-    result = CliRunner().invoke(main, ["demo", str(tmp_path / "d"), "--images", "40", "--seed", "1", "--quiet"])
+    result = CliRunner().invoke(main, ["demo", str(tmp_path / "d"), "--images", "40", "--seed", "1", "--quiet",
+                                       "--image-scale", "0.5"])
+    with Image.open(next((tmp_path / "d" / "sources" / "north_clinic").glob("*.jpg"))) as im:
+        assert im.size in {(300, 225), (256, 256)}
     assert result.exit_code == 0, result.output
     assert "demo scenario in" in result.output and "scan:" in result.output
     assert result.output.rstrip().endswith(CAUTIONS)
