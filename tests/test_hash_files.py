@@ -131,7 +131,10 @@ def test_a_dask_cluster_gives_the_same_result(folder):
     with distributed.LocalCluster(n_workers=1, processes=False, threads_per_worker=2,
                                   dashboard_address=None) as cluster, distributed.Client(cluster) as client:
         remote = HF.hash_files(paths, client=client, progress=False)
+        # the CLI's --scheduler path: connect by address
+        by_address = HF.hash_files(paths, scheduler=cluster.scheduler_address, progress=False)
     assert_same_hashes(local, remote)
+    assert_same_hashes(local, by_address)
 
 
 def test_workers_must_be_positive(folder):
@@ -251,3 +254,5 @@ def test_cli_hash_command(tmp_path, folder):
     assert result.exit_code == 2
     result = CliRunner().invoke(main, ["hash", str(ws.path), "--workers", "0"])
     assert result.exit_code == 2
+    result = CliRunner().invoke(main, ["hash", "--help"])
+    assert result.exit_code == 0 and "--scheduler" in result.output and "Exit codes" in result.output
