@@ -233,8 +233,11 @@ class ReviewWidget(_View):
             self._say("nothing to decide: the queue is empty")
             return
         self.session.decide(decision)
-        self.show(f"saved: {DECISION_WORDS[decision].lower()} for images "
-                  f"{item.image_a} and {item.image_b}")
+        message = (f"saved: {DECISION_WORDS[decision].lower()} for images "
+                   f"{item.image_a} and {item.image_b}")
+        if self.session.done:
+            message += "; every pair in this queue now has a decision"
+        self.show(message)
 
     def undo(self) -> None:
         item = self.session.undo()

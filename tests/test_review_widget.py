@@ -69,6 +69,15 @@ def test_clicking_a_decision_button_saves_it_and_shows_the_next_pair(ws):
         [1, 2, "same_image"], [1, 9, "different_lesions"], [3, 5, "skip"]]
 
 
+def test_the_widget_says_when_every_pair_is_decided(ws):
+    r = ReviewWidget(ws, reviewer="ana", verdict="possible")
+    r.buttons["same_lesion"].click()
+    assert "now has a decision" not in r.status.value
+    r.buttons["different_lesions"].click()
+    assert "every pair in this queue now has a decision" in r.status.value
+    assert "2 of 2 decided" in r.progress_text.value
+
+
 def test_keys_typed_into_the_key_box_act_like_buttons(ws):
     r = ReviewWidget(ws, reviewer="ana")
     r.keys.value = "3"
