@@ -140,6 +140,7 @@ def lab(tmp_path):
         "JUPYTER_RUNTIME_DIR": str(tmp_path / "jupyter-runtime"),
         "JUPYTERLAB_SETTINGS_DIR": str(tmp_path / "lab-settings"),
         "JUPYTERLAB_WORKSPACES_DIR": str(tmp_path / "lab-workspaces"),
+        "IPYTHONDIR": str(tmp_path / "ipython"),
         "CURATE_WORKSPACE": str(workspace),
         "CURATE_DEMO_DIR": str(tmp_path / "demo"),
         "CURATE_REVIEWER": "browser test",
@@ -163,17 +164,36 @@ def lab(tmp_path):
     base = f"http://127.0.0.1:{port}"
     try:
         _wait_for_server(f"{base}/api/status?token={token}", proc, log)
-        yield base, token, root, Path(workspace)
+        yield base, token, root, Path(workspace), log
     finally:
         _stop_server(proc, base, token)
 
 
 def test_review_notebook_decision_reaches_the_store(lab):
-    from playwright.sync_api import sync_playwright
-
-    base, token, root, workspace = lab
+    base, token, root, workspace, log = lab
     assert current_decisions(Workspace.open(workspace)).empty
     ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    try:
+        decided, ws = _drive_review(base, token, workspace)
+    except Exception as exc:  # add the server's log to any failure in the browser
+        raise AssertionError(f"{exc}\n--- JupyterLab log (tail) ---\n{log.read_text()[-4000:]}") from exc
+    row = decided.iloc[0]
+    assert row["decision"] == "different_lesions" and row["reviewer"] == "browser test"
+    # it is the pair the widget showed first: the most uncertain one in the queue
+    from curate.review_queue import ReviewSession
+
+    first = ReviewSession(ws, reviewer="check").pairs().iloc[0]
+    assert (row["image_a"], row["image_b"]) == (first["image_a"], first["image_b"])
+    assert SCREENSHOT.stat().st_size > 10_000
+    after_keys = current_decisions(ws)
+    assert len(after_keys) == 2, "typing '2' into the key box did not record a decision"
+    assert set(after_keys["decision"]) == {"different_lesions", "same_lesion"}
+
+
+def _drive_review(base: str, token: str, workspace: Path):
+    """Open the notebook, run all cells, click "Different lesions", type "2"; return decisions."""
+    from playwright.sync_api import sync_playwright
+
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS,
                                     headless=True, timeout=120_000)
@@ -229,14 +249,4 @@ def test_review_notebook_decision_reaches_the_store(lab):
             page.screenshot(path=str(ARTIFACTS / "review-notebook-after-click.png"), full_page=False)
         finally:
             browser.close()
-    row = decided.iloc[0]
-    assert row["decision"] == "different_lesions" and row["reviewer"] == "browser test"
-    # it is the pair the widget showed first: the most uncertain one in the queue
-    from curate.review_queue import ReviewSession
-
-    first = ReviewSession(ws, reviewer="check").pairs().iloc[0]
-    assert (row["image_a"], row["image_b"]) == (first["image_a"], first["image_b"])
-    assert SCREENSHOT.stat().st_size > 10_000
-    after_keys = current_decisions(ws)
-    assert len(after_keys) == 2, "typing '2' into the key box did not record a decision"
-    assert set(after_keys["decision"]) == {"different_lesions", "same_lesion"}
+    return decided, ws
