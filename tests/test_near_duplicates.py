@@ -208,3 +208,30 @@ def test_cli_pairs_exit_0_without_duplicates_and_2_on_bad_workspace(tmp_path):
     assert CliRunner().invoke(main, ["pairs", str(tmp_path / "empty"), "-q"]).exit_code == 0
     result = CliRunner().invoke(main, ["pairs", str(tmp_path / "nothing"), "-q"])
     assert result.exit_code == 2 and "not a curate workspace" in result.output
+
+
+# --- quality on a small demo scenario (the scorer in benchmarks/) ----------------------------
+
+
+@pytest.mark.slow
+def test_quality_targets_on_a_small_demo():
+    """Recall per planted kind and precision of near, scored against the demo's truth folder.
+
+    Crops and colour shifts are scored by the benchmark but not asserted here: the
+    crop target (0.95 for crops keeping >= 75%) is not met yet (see docs/near_duplicates.md).
+    """
+    import importlib.util
+    from pathlib import Path
+
+    spec = importlib.util.spec_from_file_location(
+        "score_near_duplicates", Path(__file__).parents[1] / "benchmarks" / "score_near_duplicates.py")
+    scorer = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(scorer)
+    result = scorer.score_demo(150, 0, 8, workers=2, progress=False)
+    per_kind = result["per_kind"]
+    for kind in ("byte_copy", "reencode", "resize", "rotate90", "rotate180", "rotate270", "flip_h", "flip_v"):
+        if kind in per_kind.index:
+            assert per_kind.loc[kind, "recall"] >= scorer.TARGETS[kind], (kind, per_kind)
+    assert per_kind["n"].sum() > 10
+    assert result["near_precision"] >= scorer.NEAR_PRECISION_TARGET, result["near_precision"]
+    assert set(result.get("lookalike_verdicts", {})) <= {"none", "possible"}
