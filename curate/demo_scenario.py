@@ -278,6 +278,7 @@ class _Planner:
         self._bad_files(n_zero, n_not_image)
         self._placeholders(max(2, self.n // 300))
         files = pd.DataFrame([{k: v for k, v in r.items() if k != "_lesion"} for r in self.rows])
+        files["visit"] = files["visit"].astype("Int64")
         files = files.sort_values("path", kind="stable").reset_index(drop=True)
         return ScenarioPlan(files, self.tasks, self._lookalike_frame(files), self.random_state)
 

@@ -77,6 +77,7 @@ def test_another_seed_gives_other_files(scenario, tmp_path):
 def test_one_truth_row_per_file_and_every_file_listed(scenario, truth):
     on_disk = {str(p.relative_to(scenario.path)) for p in (scenario.path / "sources").rglob("*") if p.is_file()}
     assert len(truth) == N_TINY
+    assert {str(v) for v in truth["visit"]} - {""} <= {str(v) for v in range(1, 6)}  # whole numbers
     assert set(truth["path"]) == on_disk
     assert set(truth.columns) >= {
         "path", "source", "true_patient", "true_lesion", "true_node", "visit", "modality",
