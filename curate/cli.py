@@ -162,6 +162,8 @@ def _split_table_columns(text: str | None) -> dict[str, str]:
               help="Largest Hamming distance (bits, inclusive) for a near-duplicate.")
 @click.option("--json", "json_path", type=click.Path(dir_okay=False, allow_dash=True),
               help="Write the full report as JSON to this file ('-' for standard output).")
+@click.option("--csv", "csv_path", type=click.Path(dir_okay=False),
+              help="Write the leaks as a CSV table (one row per leak) to this file.")
 @click.option("--cache", type=click.Path(file_okay=False),
               help="Folder of the hash cache (a workspace); default $CURATE_CACHE_DIR or ~/.cache/curate.")
 @click.option("--no-cache", is_flag=True, help="Do not cache perceptual hashes.")
@@ -172,8 +174,8 @@ def _split_table_columns(text: str | None) -> dict[str, str]:
 @click.option("--max-rows", type=click.IntRange(0), default=20, show_default=True,
               help="Leaks listed in the printed summary.")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bars.")
-def check_command(manifest, root, radius, json_path, cache, no_cache, no_near_duplicates, columns,
-                  ignore_id, workers, max_rows, quiet) -> int:
+def check_command(manifest, root, radius, json_path, csv_path, cache, no_cache, no_near_duplicates,
+                  columns, ignore_id, workers, max_rows, quiet) -> int:
     """Check MANIFEST for leakage between its splits; needs no workspace.
 
     MANIFEST is a CSV/TSV or Parquet table with a path column and a split
@@ -196,6 +198,8 @@ def check_command(manifest, root, radius, json_path, cache, no_cache, no_near_du
         progress=not quiet,
     )
     _write_json(json_path, report.to_json())
+    if csv_path:
+        report.to_frame(flat=True).to_csv(csv_path, index=False)
     click.echo(report.summary(max_rows=max_rows), err=json_path == "-")
     return EXIT_OK if report.ok else EXIT_FINDINGS
 

@@ -126,9 +126,12 @@ class LeakageReport:
         c = self.leaks["kind"].value_counts()
         return {k: int(c[k]) for k in KIND_ORDER if k in c.index}
 
-    def to_frame(self) -> pd.DataFrame:
-        """The leaks as a table (a copy)."""
-        return self.leaks.copy()
+    def to_frame(self, *, flat: bool = False) -> pd.DataFrame:
+        """The leaks as a table (a copy); ``flat=True`` writes ``evidence`` as JSON text (for CSV)."""
+        frame = self.leaks.copy()
+        if flat:
+            frame["evidence"] = [json.dumps(_plain(e or {}), sort_keys=True) for e in frame["evidence"]]
+        return frame
 
     def to_dict(self) -> dict:
         """A plain mapping, ready for ``json.dumps`` (the ``--json`` output)."""

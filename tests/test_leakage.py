@@ -251,9 +251,13 @@ def test_cli_check_exit_codes(tmp_path):
     split_tree(leaking, {"train": [1, 2], "test": [3]})
     shutil.copy(leaking / "train/img1.png", leaking / "test/same.png")
     report = tmp_path / "report.json"
-    result = run("check", leaking, "--no-near-duplicates", "-q", "--json", report)
+    table = tmp_path / "leaks.csv"
+    result = run("check", leaking, "--no-near-duplicates", "-q", "--json", report, "--csv", table)
     assert result.exit_code == 1, result.output
     assert json.loads(report.read_text())["counts"] == {"exact_duplicate": 1}
+    rows = pd.read_csv(table)
+    assert rows.columns.tolist() == LEAK_COLUMNS and rows["path_b"].tolist() == ["test/same.png"]
+    assert json.loads(rows["evidence"][0])["images_per_split"] == {"train": 1, "test": 1}
 
     no_split = write_csv(tmp_path / "nosplit.csv", [{"path": "a.png", "patient": "P"}])
     result = run("check", no_split, "-q")
