@@ -15,7 +15,9 @@ same pairs, side by side in one run:
 
 Each figure is the wall time of ``ReviewWidget``'s "Next" (button click ->
 both pictures oriented, squared, JPEG-encoded and set on the widgets, plus the
-prefetch of the next pair's thumbnails), without a browser. The target is
+prefetch of the next pair's thumbnails into memory), without a browser; each
+of the three runs starts a new widget, so no decoded thumbnail is carried over.
+The machine's load is printed too: other work on a shared machine slows every row. The target is
 well under 200 ms per pair; the ratios to that budget and between cold and
 warm are printed.
 """
@@ -23,6 +25,7 @@ warm are printed.
 from __future__ import annotations
 
 import argparse
+import os
 import shutil
 import statistics
 import tempfile
@@ -100,6 +103,7 @@ def main() -> None:
         warm = time_pairs(ws, n_pairs, size=args.size)
         diff = time_pairs(ws, n_pairs, size=args.size, mode="difference")
 
+    print(f"load average (1 min): {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")
     print(f"cold cache            {describe(cold)}")
     print(f"warm cache            {describe(warm)}")
     print(f"warm, difference view {describe(diff)}")
