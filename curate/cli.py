@@ -591,8 +591,9 @@ def _comma_list(text):
               help="See --max-id-share (a count of images).")
 @click.option("--max-rows", type=click.IntRange(min=0), default=10, show_default=True,
               help="Largest groups and findings to print.")
+@click.option("--plot", type=click.Path(dir_okay=False), help="Write a histogram of group sizes (PNG).")
 def groups_command(workspace, patient_scope, lesion_scope, link_verdicts, max_id_share, min_overshared,
-                   max_rows) -> int:
+                   max_rows, plot) -> int:
     """Join the images of WORKSPACE into leakage groups and store them (table groups).
 
     Links: same patient id, same lesion id, same SHA-256, near-duplicate pairs with
@@ -612,6 +613,11 @@ def groups_command(workspace, patient_scope, lesion_scope, link_verdicts, max_id
         link_verdicts=tuple(_comma_list(link_verdicts)), max_id_share=max_id_share,
         min_overshared_images=min_overshared)
     click.echo(grouping.summary(max_rows))
+    if plot:
+        from curate.split_plots import plot_group_sizes
+
+        plot_group_sizes(grouping).savefig(plot, dpi=120)
+        click.echo(f"plot: {plot}")
     return EXIT_OK if grouping.report.ok else EXIT_FINDINGS
 
 
@@ -628,7 +634,8 @@ def groups_command(workspace, patient_scope, lesion_scope, link_verdicts, max_id
               help="A frozen manifest (CSV/Parquet with sha256 or path, and split) whose images must not move.")
 @click.option("--max-rows", type=click.IntRange(min=0), default=20, show_default=True,
               help="Findings to print.")
-def split_command(workspace, fractions, names, stratify, random_state, keep, max_rows) -> int:
+@click.option("--plot", type=click.Path(dir_okay=False), help="Write each class's share per split (PNG).")
+def split_command(workspace, fractions, names, stratify, random_state, keep, max_rows, plot) -> int:
     """Assign whole leakage groups of WORKSPACE to splits, balancing class shares.
 
     Groups are built first when table groups does not cover every image. With
@@ -651,6 +658,11 @@ def split_command(workspace, fractions, names, stratify, random_state, keep, max
         Workspace.open(workspace), fractions=fraction_values, names=_comma_list(names),
         stratify=_comma_list(stratify), random_state=random_state, keep=keep)
     click.echo(assignment.summary(max_rows))
+    if plot:
+        from curate.split_plots import plot_split_shares
+
+        plot_split_shares(assignment).savefig(plot, dpi=120)
+        click.echo(f"plot: {plot}")
     return EXIT_OK if assignment.report.ok else EXIT_FINDINGS
 
 
@@ -728,3 +740,41 @@ def pairs_command(workspace, radius, out_path, workers, max_rows, quiet) -> int:
     if max_rows and len(pairs):
         click.echo(pairs[["path_a", "path_b", "verdict", "score", "conflict"]].head(max_rows).to_string(index=False))
     return EXIT_FINDINGS if counts.get("exact", 0) or counts.get("near", 0) else EXIT_OK
+
+
+# --- embedded metadata (privacy) ---------------------------------------------------
+
+
+@command(main, "exif", "List embedded metadata that may identify patients; write clean copies.")
+@click.argument("workspace", type=click.Path(exists=True, file_okay=False))
+@click.option("--clean-copies", "clean_copies", type=click.Path(file_okay=False),
+              help="Write copies without identifying metadata into this folder (pixels untouched).")
+@click.option("--csv", "csv_path", type=click.Path(dir_okay=False),
+              help="Write the fields found to this CSV.")
+@click.option("--quiet", is_flag=True, help="No progress bar.")
+def exif_command(workspace: str, clean_copies: str | None, csv_path: str | None, quiet: bool) -> int:
+    """List Exif fields in the catalog's images that may identify a patient
+    (GPS position, capture times, free-text descriptions, names, serial numbers).
+
+    With --clean-copies, write copies of JPEG and PNG files with that metadata
+    removed and the pixels untouched; the original files are never modified.
+    Exit 1 when identifying fields were found.
+    """
+    from curate.exif_files import identifying_metadata, write_clean_copies
+    from curate.store import Workspace
+
+    ws = Workspace.open(workspace)
+    catalog = ws.catalog()
+    catalog = catalog[catalog["decodable"] == 1]
+    fields = identifying_metadata(catalog["path"], progress=not quiet)
+    if csv_path:
+        fields.to_csv(csv_path, index=False)
+    n_files = fields["path"].nunique()
+    counts = fields.groupby("finding")["path"].nunique().to_dict()
+    detail = ", ".join(f"{n} {kind}" for kind, n in sorted(counts.items()))
+    click.echo(f"{n_files} of {len(catalog)} images carry identifying metadata" + (f" ({detail})" if detail else ""))
+    if clean_copies:
+        copies = write_clean_copies(catalog, clean_copies, progress=not quiet)
+        done = copies["status"].value_counts().to_dict()
+        click.echo("clean copies in " + clean_copies + ": " + ", ".join(f"{n} {s}" for s, n in sorted(done.items())))
+    return EXIT_FINDINGS if n_files else EXIT_OK

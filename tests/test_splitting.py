@@ -367,8 +367,12 @@ def test_cli_exit_codes(tmp_path, monkeypatch):
     assert "60 images in 30 groups" in result.output
     result = runner.invoke(main, ["groups", str(flagged.path)])
     assert result.exit_code == 1 and "placeholder_id" in result.output
-    result = runner.invoke(main, ["split", str(clean.path), "--stratify", "label", "--seed", "2"])
+    result = runner.invoke(main, ["split", str(clean.path), "--stratify", "label", "--seed", "2",
+                                  "--plot", str(tmp_path / "shares.png")])
     assert result.exit_code == 0, result.output
+    assert (tmp_path / "shares.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG spec 5.2)
+    result = runner.invoke(main, ["groups", str(clean.path), "--plot", str(tmp_path / "sizes.png")])
+    assert result.exit_code == 0 and (tmp_path / "sizes.png").stat().st_size > 0
     result = runner.invoke(main, ["split", str(flagged.path), "--stratify", "label"])
     assert result.exit_code == 1 and "class_too_small" in result.output and "label=rare" in result.output
     result = runner.invoke(main, ["split", str(clean.path), "--fractions", "0.7,0.7"])
