@@ -30,6 +30,9 @@ _EXPORTS: dict[str, str] = {
     "LeakageError": "curate.errors",
     "TaxonomyError": "curate.errors",
     "WorkspaceError": "curate.errors",
+    # embedded metadata (privacy)
+    "identifying_metadata": "curate.exif_files",
+    "write_clean_copies": "curate.exif_files",
     # ingest
     "scan_folder": "curate.ingest",
     "scan_metadata": "curate.ingest",
