@@ -356,3 +356,49 @@ def test_unsure_pairs_across_splits_are_listed_for_review_not_as_leaks():
     assert r.to_review[["path_a", "path_b"]].values.tolist() == [["a", "b"]]
     assert "possible" in r.summary()
     assert json.loads(r.to_json())["to_review"][0]["distance"] == 9
+
+
+# --- properties against a plain reference ------------------------------------------------
+
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+ROWS = st.lists(
+    st.tuples(st.sampled_from(["train", "validation", "test"]), st.sampled_from("abcd"),
+              st.sampled_from(["P1", "P2", "p1", "P3", "unknown"]), st.sampled_from(["L1", "L2", None])),
+    min_size=1, max_size=25,
+)
+
+
+def reference_outside(rows, column):
+    """Plain loops: images of an id in 2+ splits that are outside its most common split."""
+    by_key = {}
+    for i, r in enumerate(rows):
+        value = r[column]
+        if value is None or value.lower() == "unknown":
+            continue
+        by_key.setdefault(value.casefold(), []).append((f"img{i}", r[0]))
+    out = set()
+    order = ["train", "validation", "test"]
+    for images in by_key.values():
+        splits = [s for _, s in images]
+        if len(set(splits)) < 2:
+            continue
+        main = max(set(splits), key=lambda s: (splits.count(s), -order.index(s)))
+        out |= {p for p, s in images if s != main}
+    return out
+
+
+@settings(max_examples=30, deadline=None)
+@given(ROWS, st.randoms(use_true_random=False))
+def test_find_leaks_matches_a_plain_reference_and_ignores_row_order(rows, rnd):
+    t = pd.DataFrame({"path": [f"img{i}" for i in range(len(rows))], "split": [r[0] for r in rows],
+                      "sha256": [r[1] for r in rows], "patient_id": [r[2] for r in rows],
+                      "lesion_id": [r[3] for r in rows]})
+    report = find_leaks(t)
+    f = report.to_frame()
+    for kind, column in (("exact_duplicate", 1), ("same_patient", 2), ("same_lesion", 3)):
+        assert set(f.loc[f["kind"] == kind, "path_b"]) == reference_outside(rows, column), kind
+    shuffled = t.sample(frac=1, random_state=rnd.randint(0, 2**31)).reset_index(drop=True)
+    assert find_leaks(shuffled).to_frame().drop(columns="evidence").equals(f.drop(columns="evidence"))
+    assert report.ok == (len(f) == 0)
