@@ -33,6 +33,8 @@ _EXPORTS: dict[str, str] = {
     # embedded metadata (privacy)
     "identifying_metadata": "curate.exif_files",
     "write_clean_copies": "curate.exif_files",
+    # workspace report
+    "write_report": "curate.workspace_report",
     # ingest
     "scan_folder": "curate.ingest",
     "scan_metadata": "curate.ingest",
