@@ -778,3 +778,24 @@ def exif_command(workspace: str, clean_copies: str | None, csv_path: str | None,
         done = copies["status"].value_counts().to_dict()
         click.echo("clean copies in " + clean_copies + ": " + ", ".join(f"{n} {s}" for s, n in sorted(done.items())))
     return EXIT_FINDINGS if n_files else EXIT_OK
+
+
+# --- report ------------------------------------------------------------------------
+
+
+@command(main, "report", "Write a Markdown report of the workspace (with plots and cautions).")
+@click.argument("workspace", type=click.Path(exists=True, file_okay=False))
+@click.option("--out", "out_dir", type=click.Path(file_okay=False),
+              help="Folder for report.md and its plots (default: WORKSPACE/report).")
+@click.option("--depth", type=int, default=2, show_default=True,
+              help="Deepest taxonomy level shown in the balance table.")
+def report_command(workspace: str, out_dir: str | None, depth: int) -> int:
+    """Write report.md: catalog per source, problems, duplicate pairs, review decisions,
+    identifying embedded metadata, label mapping, class balance per split, leakage
+    groups, splits, skin-tone coverage and frozen manifests."""
+    from curate.store import Workspace
+    from curate.workspace_report import write_report
+
+    path = write_report(Workspace.open(workspace), out_dir, depth=depth)
+    click.echo(f"report written: {path}")
+    return EXIT_OK
