@@ -165,7 +165,7 @@ def run(name, y, groups, k, random_state):
     print(f"target (worst per-class deviation <= 0.5 x sklearn, zero leakage): {'met' if ok else 'NOT met'}")
     print(f"same on the excess over each class's bound: "
           f"{'met' if a['worst_excess'] <= 0.5 * b['worst_excess'] and leak_free else 'NOT met'}")
-    return ok, t_ours
+    return ok, t_ours, c_ours
 
 
 def main(argv=None):
@@ -180,11 +180,12 @@ def main(argv=None):
     # warm the compiled optimiser so its one-off compile time is not counted
     BalancedGroupKFold(n_splits=2, random_state=0).fold_of_rows(np.array([0, 1, 0, 1]), np.arange(4))
     y, g = demo_like(int(100_000 * scale), rng)
-    ok_a, _ = run("(a) demo-like catalog", y, g, args.folds, args.random_state)
+    ok_a, _, _ = run("(a) demo-like catalog", y, g, args.folds, args.random_state)
     y, g = skewed_classes(int(130_000 * scale), int(2000 * scale), rng)
-    ok_b, secs = run("(b) skewed synthetic", y, g, args.folds, args.random_state)
-    print(f"\n130,000-image split time target (< 30 s): {secs:.2f} s "
-          f"{'met' if secs < 30 else 'NOT met'}{' (quick mode: 13,000 images)' if args.quick else ''}")
+    ok_b, secs, cpu = run("(b) skewed synthetic", y, g, args.folds, args.random_state)
+    print(f"\n130,000-image split time target (< 30 s): wall clock {secs:.2f} s "
+          f"{'met' if secs < 30 else 'NOT met'}, CPU {cpu:.2f} s {'met' if cpu < 30 else 'NOT met'}"
+          f"{' (quick mode: 13,000 images)' if args.quick else ''}")
     return 0 if (ok_a and ok_b and secs < 30) else 1
 
 
