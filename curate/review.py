@@ -62,7 +62,15 @@ def _widgets():
 
 
 def default_reviewer() -> str:
-    """The reviewer name used when none is given: $CURATE_REVIEWER, else the login name."""
+    """The reviewer name used when none is given: $CURATE_REVIEWER, else the login name.
+
+    Examples
+    --------
+    >>> import os
+    >>> os.environ["CURATE_REVIEWER"] = "ana"; default_reviewer()
+    'ana'
+    >>> del os.environ["CURATE_REVIEWER"]
+    """
     return os.environ.get("CURATE_REVIEWER") or getpass.getuser()
 
 
@@ -404,7 +412,24 @@ class ClusterWidget(_View):
 
 
 def review(workspace, *, reviewer: str | None = None, **options) -> ReviewWidget:
-    """Show the pair review widget for a workspace (see :class:`ReviewWidget`)."""
+    """Show the pair review widget for a workspace (see :class:`ReviewWidget`).
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> from curate.store import Workspace
+    >>> ws = Workspace.create(tempfile.mkdtemp())
+    >>> with ws.transaction() as con:   # two catalog rows (files absent: placeholders shown)
+    ...     for i in (1, 2):
+    ...         _ = con.execute("INSERT INTO images(image_id, path, root, source, first_seen, "
+    ...                         "last_seen) VALUES (?, ?, '/', 'clinic', '', '')", (i, f"/{i}.jpg"))
+    ...     _ = con.execute("INSERT INTO pairs(image_a, image_b, score, verdict) "
+    ...                     "VALUES (1, 2, 0.6, 'possible')")
+    >>> w = review(ws, reviewer="ana")
+    >>> w.buttons["different_lesions"].click()
+    >>> str(w.session.progress())
+    '1 of 1 decided'
+    """
     return ReviewWidget(workspace, reviewer=reviewer, **options)
 
 

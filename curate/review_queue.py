@@ -135,6 +135,15 @@ def current_decisions(workspace: Workspace) -> pd.DataFrame:
 
     Columns: ``decision_id, image_a, image_b, decision, reviewer, decided_at``,
     one row per pair, sorted by ``(image_a, image_b)``. This is what grouping reads.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> ws = Workspace.create(tempfile.mkdtemp())
+    >>> _ = record_decision(ws, 7, 3, "same_lesion", reviewer="ana")
+    >>> _ = record_decisions(ws, [(3, 7), (1, 2)], "different_lesions", reviewer="ben")
+    >>> current_decisions(ws)[["image_a", "image_b", "decision", "reviewer"]].values.tolist()
+    [[1, 2, 'different_lesions', 'ben'], [3, 7, 'different_lesions', 'ben']]
     """
     return workspace.read_sql(
         "SELECT d.decision_id, d.image_a, d.image_b, d.decision, d.reviewer, d.decided_at "
