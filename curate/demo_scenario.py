@@ -287,7 +287,6 @@ class _Planner:
     def _people(self, n_originals: int) -> list[dict]:
         """Patients, their lesions and visits until ``n_originals`` pictures are planned."""
         rng = self.rng
-        weights = np.array([s.weight for s in SOURCES])
         must_have = list(DIAGNOSIS_WEIGHTS)
         rng.shuffle(must_have)
         captures: list[dict] = []
@@ -295,7 +294,7 @@ class _Planner:
             if len(self.patients) < len(SOURCES):  # every source gets patients of its own
                 source = SOURCES[len(self.patients)]
             else:
-                source = SOURCES[rng.choice(len(SOURCES), p=weights / weights.sum())]
+                source = SOURCES[_pick(rng, _SOURCE_CUMULATIVE)]
             lookalike_of = None
             if self.lesions and (len(self.patients) == len(SOURCES) or rng.random() < 0.06):
                 lookalike_of = self.lesions[int(rng.integers(len(self.lesions)))]
@@ -312,9 +311,7 @@ class _Planner:
         return captures[:n_originals]
 
     def _draw_node(self) -> str:
-        names = list(DIAGNOSIS_WEIGHTS)
-        p = np.array([DIAGNOSIS_WEIGHTS[k] for k in names])
-        return names[int(self.rng.choice(len(names), p=p / p.sum()))]
+        return _DIAGNOSES[_pick(self.rng, _DIAGNOSIS_CUMULATIVE)]
 
     def _new_patient(self, source: SourceStyle, lookalike_of: dict | None) -> dict:
         rng = self.rng
@@ -545,10 +542,9 @@ class _Planner:
     def _copies(self, originals, n_copies: int) -> None:
         rng = self.rng
         usable = [(t, r) for t, r in originals if not t.truncate]
-        p = np.array(_COPY_WEIGHTS, dtype=float)
         n_conflicts = max(1, n_copies // 40)
         for i in range(n_copies):
-            kind = COPY_KINDS[i] if i < len(COPY_KINDS) else COPY_KINDS[int(rng.choice(len(COPY_KINDS), p=p / p.sum()))]
+            kind = COPY_KINDS[i] if i < len(COPY_KINDS) else COPY_KINDS[_pick(rng, _COPY_CUMULATIVE)]
             task, orig = usable[int(rng.integers(len(usable)))]
             r = rng.random()
             if r < 0.75:
@@ -679,6 +675,22 @@ class _Planner:
 
 
 # --- small helpers -------------------------------------------------------------------
+
+
+def _cumulative(weights) -> np.ndarray:
+    w = np.asarray(weights, dtype=float)
+    return np.cumsum(w) / w.sum()
+
+
+def _pick(rng: np.random.Generator, cumulative: np.ndarray) -> int:
+    """Index drawn with the probabilities whose running sum is ``cumulative`` (one uniform draw)."""
+    return min(int(np.searchsorted(cumulative, rng.random(), side="right")), len(cumulative) - 1)
+
+
+_DIAGNOSES = tuple(DIAGNOSIS_WEIGHTS)
+_DIAGNOSIS_CUMULATIVE = _cumulative(list(DIAGNOSIS_WEIGHTS.values()))
+_SOURCE_CUMULATIVE = _cumulative([s.weight for s in SOURCES])
+_COPY_CUMULATIVE = _cumulative(_COPY_WEIGHTS)
 
 
 def _add_kind(current: str | None, kind: str) -> str:
