@@ -185,7 +185,7 @@ def write_task(task: FileTask, out_dir: str) -> int:
     archive re-exporting the file would.
     """
     from curate.demo_copies import apply_ops, decode, encode, patient_exif
-    from curate.demo_images import draw_lesion
+    from curate.demo_images import draw_lesion_image
 
     target = os.path.join(out_dir, task.path)
     if task.kind == "zero_byte":
@@ -195,11 +195,9 @@ def write_task(task: FileTask, out_dir: str) -> int:
         with open(target, "w", encoding="utf-8") as f:
             f.write(_NOT_AN_IMAGE_TEXT)
         return 1
-    from PIL import Image
-
-    pixels = draw_lesion(task.look, task.capture)
+    picture = draw_lesion_image(task.look, task.capture)
     exif = patient_exif(*task.exif) if task.exif else None
-    data = encode(Image.fromarray(pixels), "JPEG", quality=task.quality, exif=exif)
+    data = encode(picture, "JPEG", quality=task.quality, exif=exif)
     with open(target, "wb") as f:
         f.write(data[: len(data) // 2] if task.truncate else data)
     if task.copies:

@@ -14,10 +14,11 @@ and camera noise: the same lesion, never a copy.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, replace
 
 import numpy as np
-from PIL import Image, ImageDraw
+from PIL import Image, ImageChops, ImageDraw
 
 # --- colour -------------------------------------------------------------------------
 
@@ -335,6 +336,18 @@ def draw_lesion(look: LesionLook, capture: Capture) -> np.ndarray:
     >>> a.shape, a.dtype, bool((a == draw_lesion(look, cap)).all())
     ((64, 64, 3), dtype('uint8'), True)
     """
+    return np.asarray(draw_lesion_image(look, capture))
+
+
+def draw_lesion_image(look: LesionLook, capture: Capture) -> Image.Image:
+    """:func:`draw_lesion` as a Pillow RGB image (what the demo writer encodes).
+
+    Examples
+    --------
+    >>> look = lesion_look("blue_naevus", np.random.default_rng(2))
+    >>> draw_lesion_image(look, Capture("clinical", 40, 30, skin_lab(20.0, 14.0, 9.0))).size
+    (40, 30)
+    """
     if capture.modality not in ("clinical", "dermoscopic"):
         raise ValueError(f"modality must be 'clinical' or 'dermoscopic', got {capture.modality!r}")
     w, h = int(capture.width), int(capture.height)
@@ -342,11 +355,11 @@ def draw_lesion(look: LesionLook, capture: Capture) -> np.ndarray:
         raise ValueError(f"picture size must be at least 16x16 pixels, got {w}x{h}")
     rng = np.random.default_rng(capture.seed)
 
-    img = _skin(capture, w, h, rng).convert("RGBA")
+    img = _skin(capture, w, h, rng)
     placed = _placed_lesion(look, capture, w, h)
     if placed is not None:
-        img.alpha_composite(placed[0], dest=placed[1])
-    img = img.convert("RGB")
+        layer, corner = placed
+        img.paste(layer, corner, mask=layer)  # alpha-blend the lesion onto the skin
     if capture.hair:
         _draw_hair(img, capture.hair, rng)
     if capture.ruler:
@@ -358,10 +371,9 @@ def draw_lesion(look: LesionLook, capture: Capture) -> np.ndarray:
     if capture.modality == "dermoscopic":
         img = Image.composite(img, Image.new("RGB", (w, h), (6, 5, 5)), _field_mask(w, h))
     # camera grain: a triangular distribution from random bytes (cheap), -7..7 levels
-    noise = np.frombuffer(rng.bytes(h * w), dtype=np.uint8).reshape(h, w, 1)
-    grain = ((noise & 15) >> 1).astype(np.int16) - (noise >> 5)
-    out = np.asarray(img, dtype=np.int16) + grain
-    return np.clip(out, 0, 255, out=out).astype(np.uint8)
+    noise = np.frombuffer(rng.bytes(h * w), dtype=np.uint8).reshape(h, w)
+    grain = Image.fromarray(((noise & 15) >> 1) + 7 - (noise >> 5), mode="L")
+    return ImageChops.add(img, Image.merge("RGB", (grain, grain, grain)), scale=1.0, offset=-7)
 
 
 def _skin(cap: Capture, w: int, h: int, rng: np.random.Generator) -> Image.Image:
@@ -387,7 +399,7 @@ def _skin(cap: Capture, w: int, h: int, rng: np.random.Generator) -> Image.Image
         cloth = np.asarray(colour, np.float32) * (1.0 + 0.05 * rng.standard_normal((sh, sw, 1), dtype=np.float32))
         small = small * (1.0 - cover) + cloth * cover
     small = np.clip(small * 255.0 + 0.5, 0, 255).astype(np.uint8)
-    return Image.fromarray(small, mode="RGB").resize((w, h), Image.Resampling.BICUBIC)
+    return Image.fromarray(small, mode="RGB").resize((w, h), Image.Resampling.BILINEAR)
 
 
 def _placed_lesion(look: LesionLook, cap: Capture, w: int, h: int):
@@ -399,15 +411,17 @@ def _placed_lesion(look: LesionLook, cap: Capture, w: int, h: int):
     local = _local_lesion(look, cap.seed)
     radius = max(look.size * cap.zoom * cap.growth * min(w, h), 3.0)
     cx, cy = cap.centre[0] * w, cap.centre[1] * h
-    reach = radius * max(look.elongation, 1.0) * _LOCAL_EXTENT * 1.45 + 2
-    x0, y0 = int(max(cx - reach, 0)), int(max(cy - reach, 0))
-    x1, y1 = int(min(cx + reach + 1, w)), int(min(cy + reach + 1, h))
+    c, s = float(np.cos(cap.angle)), float(np.sin(cap.angle))
+    ru, rv = radius * look.elongation, radius
+    # bounding box of the rotated local canvas (half-sides extent * ru and extent * rv)
+    reach_x = _LOCAL_EXTENT * (abs(c) * ru + abs(s) * rv) + 2
+    reach_y = _LOCAL_EXTENT * (abs(s) * ru + abs(c) * rv) + 2
+    x0, y0 = int(max(cx - reach_x, 0)), int(max(cy - reach_y, 0))
+    x1, y1 = int(min(cx + reach_x + 1, w)), int(min(cy + reach_y + 1, h))
     if x1 <= x0 or y1 <= y0:
         return None
-    c, s = float(np.cos(cap.angle)), float(np.sin(cap.angle))
     # box pixel (x, y) -> picture (x + x0, y + y0) -> local (u, v) in radii -> canvas pixel
     k = (_LOCAL_SIZE - 1) / (2 * _LOCAL_EXTENT)
-    ru, rv = radius * look.elongation, radius
     a, b = k * c / ru, k * s / ru
     d, e = -k * s / rv, k * c / rv
     off = (_LOCAL_SIZE - 1) / 2
@@ -417,6 +431,7 @@ def _placed_lesion(look: LesionLook, cap: Capture, w: int, h: int):
     return layer, (x0, y0)
 
 
+@functools.lru_cache(maxsize=8)
 def _field_mask(w: int, h: int) -> Image.Image:
     """Dermoscope field: 255 inside a soft-edged circle, falling to 0 outside."""
     sw, sh = max(w // 4, 8), max(h // 4, 8)
