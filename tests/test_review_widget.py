@@ -143,3 +143,16 @@ def test_cluster_grid_splits_off_ticked_members(ws):
     assert [d[:3] for d in decisions(ws)][0] == [1, 2, "same_lesion"]
     c.split_button.click()  # nothing ticked: nothing saved
     assert len(decisions(ws)) == 3 and "tick" in c.status.value
+
+
+def test_an_empty_workspace_shows_an_empty_queue_without_errors(tmp_path):
+    from curate.store import Workspace
+
+    ws = Workspace.create(tmp_path / "empty")
+    r = ReviewWidget(ws, reviewer="ana")
+    assert "no candidate pairs" in r.pair_info.value
+    r.buttons["undo"].click()
+    r.buttons["next"].click()
+    r.press("1")
+    assert "queue is empty" in r.status.value and decisions(ws) == []
+    assert "no clusters" in ClusterWidget(ws, reviewer="ana").status.value
