@@ -223,7 +223,7 @@ def objective(counts, sizes, assign, targets, weights, overall_weight) -> float:
 
 
 def search(counts, sizes, targets, weights, *, order, locked, offsets, overall_weight=1.0,
-           max_sweeps=100, max_candidates=32, window=8,
+           max_sweeps=100, max_candidates=128, window=16,
            restarts=None, kick_fraction=0.05):
     """Assign groups (rows of ``counts``) to splits; returns (assignment, sweeps).
 
