@@ -638,7 +638,8 @@ def groups_command(workspace, patient_scope, lesion_scope, link_verdicts, max_id
 def split_command(workspace, fractions, names, stratify, random_state, keep, max_rows, plot) -> int:
     """Assign whole leakage groups of WORKSPACE to splits, balancing class shares.
 
-    Groups are built first when table groups does not cover every image. With
+    Groups are rebuilt first, with the options of the last `curate groups` run,
+    so new pairs and review decisions count. With
     --keep, images of the manifest stay in their split, and new images that join
     one of their groups follow them. Classes with fewer groups than splits are
     reported with where their groups went.

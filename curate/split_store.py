@@ -71,7 +71,14 @@ def build_groups(ws: Workspace, **options) -> Grouping:
     return grouping
 
 
-def split_catalog(ws: Workspace, *, taxonomy=None) -> pd.DataFrame:
+def stored_group_options(ws: Workspace) -> dict:
+    """The grouping options of the last :func:`build_groups` run (empty: defaults)."""
+    record = json.loads(ws.get_meta(GROUP_META_KEY, "{}") or "{}")
+    keys = ("patient_scope", "lesion_scope", "link_verdicts", "max_id_share", "min_overshared_images")
+    return {k: (tuple(record[k]) if k == "link_verdicts" else record[k]) for k in keys if k in record}
+
+
+def split_catalog(ws: Workspace) -> pd.DataFrame:
     """The present catalog with ``group_id``, ``node``, ``training_class`` and ``ita_bin``."""
     catalog = ws.catalog()
     groups = ws.read_sql("SELECT image_id, group_id FROM groups")
@@ -194,18 +201,17 @@ def split_workspace(
 ) -> SplitAssignment:
     """Propose a split of the workspace's present images and store it in table ``splits``.
 
-    Groups are rebuilt first when table ``groups`` does not cover every present
-    image. ``stratify`` takes catalog columns (``source``, ``modality`` ...),
+    Groups are rebuilt first (with ``group_options``, or else the options of the
+    last :func:`build_groups` run), so new pairs and decisions count. ``stratify`` takes catalog columns (``source``, ``modality`` ...),
     ``node``, ``training_class``, ``ita_bin``, and ``node:DEPTH`` for the taxonomy
     ancestor at that depth. ``keep`` is a manifest whose assignments must not move.
     """
-    catalog = split_catalog(ws)
-    if catalog.empty:
+    if ws.catalog().empty:
         raise ValueError(f"{ws.path}: the catalog is empty; run `curate scan` first")
-    rebuilt = bool(catalog["group_id"].isna().any())
-    if rebuilt:
-        build_groups(ws, **(group_options or {}))
-        catalog = split_catalog(ws)
+    # groups are always rebuilt, with the options of the last `curate groups` run, so
+    # pairs and review decisions added since then are honoured
+    build_groups(ws, **(group_options if group_options is not None else stored_group_options(ws)))
+    catalog = split_catalog(ws)
     catalog, columns = _stratify_columns(catalog, stratify, ws, taxonomy)
     locked, keep_counts = (None, None)
     if keep is not None:
@@ -217,7 +223,8 @@ def split_workspace(
     assignment = propose_split(catalog, fractions=fractions, names=names, stratify=columns,
                                keep=locked, random_state=random_state)
     parameters = dict(assignment.parameters, keep=None if keep is None else str(keep),
-                      keep_rows=keep_counts, groups_rebuilt=rebuilt, images=len(assignment.splits),
+                      keep_rows=keep_counts, group_parameters=stored_group_options(ws),
+                      images=len(assignment.splits),
                       created_at=utc_now())
     assignment.parameters = parameters
     rows = list(zip(assignment.splits.index.astype(int).tolist(), assignment.splits.tolist()))

@@ -122,7 +122,7 @@ def _solve(problem: _Problem, targets, *, random_state, locked_groups=None,
     rng = check_random_state(random_state)
     G = len(problem.sizes)
     rank = rng.permutation(G)
-    offsets = rng.integers(0, 2**31 - 1, size=G) if hasattr(rng, "integers") else rng.randint(0, 2**31 - 1, size=G)
+    offsets = rng.randint(0, 2**31 - 1, size=G)
     order = np.lexsort((rank, -problem.sizes))
     locked = np.full(G, -1, dtype=np.int64) if locked_groups is None else locked_groups
     assignment, _ = _split_search.search(
@@ -160,8 +160,7 @@ def check_fractions(fractions, names=None) -> tuple[np.ndarray, tuple]:
 
 
 def _check_random_state(random_state):
-    if random_state is not None and not isinstance(random_state, (numbers.Integral, np.random.RandomState,
-                                                                  np.random.Generator)):
+    if random_state is not None and not isinstance(random_state, (numbers.Integral, np.random.RandomState)):
         raise TypeError(f"random_state must be None, an int or a RandomState, got {random_state!r}")
 
 

@@ -411,3 +411,16 @@ def test_stratify_by_taxonomy_depth_and_skin_tone_bin(tmp_path):
     assert "ita_bin" in split_catalog(ws).columns
     with pytest.raises(ValueError, match="depth"):
         split_workspace(ws, fractions=[0.5, 0.5], stratify=["node:x"])
+
+
+def test_split_regroups_with_the_stored_options_and_new_decisions(tmp_path):
+    ws = make_workspace(tmp_path / "ws", clean_rows(20))
+    build_groups(ws, patient_scope="global", max_id_share=0.5)
+    with ws.transaction() as con:  # a reviewer joins two patients' images after grouping
+        con.execute("INSERT INTO decisions(image_a, image_b, decision, reviewer, decided_at) "
+                    "VALUES (1, 20, 'same_lesion', 'r', '2026-01-01T00:00:00')")
+    sa = split_workspace(ws, fractions=[0.5, 0.5], random_state=0)
+    assert sa.splits[1] == sa.splits[20] and sa.groups[1] == sa.groups[20]
+    stored = json.loads(ws.get_meta("group_parameters"))
+    assert stored["patient_scope"] == "global" and stored["max_id_share"] == 0.5
+    assert json.loads(ws.get_meta("split_parameters"))["group_parameters"]["patient_scope"] == "global"
