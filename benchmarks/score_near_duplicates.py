@@ -218,7 +218,7 @@ def score_samples(radius: int, workers=None, seed: int = 0) -> dict:
                     out.save(root / fname)
                 rows.append({"path": fname, "copy_of": original, "copy_kind": kind})
         truth = pd.DataFrame(rows)
-        pairs = find_near_duplicates(root, radius=radius, workers=workers)
+        pairs = find_near_duplicates(root, radius=radius, workers=workers, progress=False)
         result = score(_relative(pairs, root), truth)
     result["n_photos"] = int(truth["copy_of"].isna().sum())
     return result

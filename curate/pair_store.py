@@ -139,7 +139,7 @@ def _as_table(paths_or_dataframe) -> pd.DataFrame:
 
 
 def find_near_duplicates(paths_or_dataframe, *, radius: int = DEFAULT_RADIUS, workers: int | None = None,
-                         cache=None, progress: bool = False) -> pd.DataFrame:
+                         cache=None, progress: bool = True) -> pd.DataFrame:
     """Exact and near-duplicate pairs among image files, with no workspace.
 
     Parameters
@@ -176,7 +176,7 @@ def find_near_duplicates(paths_or_dataframe, *, radius: int = DEFAULT_RADIUS, wo
     >>> Image.linear_gradient("L").save(os.path.join(d, "b.png"))
     >>> shutil.copy(os.path.join(d, "a.png"), os.path.join(d, "copy.png"))  # doctest: +ELLIPSIS
     '...'
-    >>> pairs = find_near_duplicates(d, workers=1)
+    >>> pairs = find_near_duplicates(d, workers=1, progress=False)
     >>> [(os.path.basename(a), os.path.basename(b), v) for a, b, v in
     ...  zip(pairs["path_a"], pairs["path_b"], pairs["verdict"])]
     [('a.png', 'copy.png', 'exact')]

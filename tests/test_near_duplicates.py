@@ -97,7 +97,7 @@ def _write_set(folder):
 
 def test_find_near_duplicates_on_a_folder(tmp_path):
     expected = _write_set(tmp_path)
-    pairs = find_near_duplicates(tmp_path, workers=1)
+    pairs = find_near_duplicates(tmp_path, workers=1, progress=False)
     names = {(os.path.basename(a), os.path.basename(b)): v
              for a, b, v in zip(pairs["path_a"], pairs["path_b"], pairs["verdict"])}
     for (a, b), verdict in expected.items():
@@ -115,8 +115,8 @@ def test_find_near_duplicates_takes_a_list_or_a_frame(tmp_path):
     files = sorted(str(p) for p in tmp_path.iterdir())
     table = pd.DataFrame({"path": files, "label": ["naevus"] * len(files)})
     table.loc[table["path"].str.endswith("byte.png"), "label"] = "Melanoma"
-    by_frame = find_near_duplicates(table, workers=1)
-    by_list = find_near_duplicates(files, workers=1)
+    by_frame = find_near_duplicates(table, workers=1, progress=False)
+    by_list = find_near_duplicates(files, workers=1, progress=False)
     assert len(by_frame) == len(by_list)
     exact = by_frame[by_frame["verdict"] == "exact"]
     assert exact["conflict"].tolist() == ["label"]
