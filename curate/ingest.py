@@ -342,6 +342,8 @@ def _scan(ws, source, root, entries, meta_rows, findings, progress, started, wor
             "SELECT COUNT(*), COALESCE(SUM(n), 0) FROM (SELECT COUNT(*) AS n FROM images "
             "WHERE present = 1 AND size > 0 AND sha256 IS NOT NULL GROUP BY sha256 HAVING n > 1)"
         ).fetchone()
+    if to_read or updates or gone:
+        _checkpoint(ws)  # fold the write-ahead log into the database now, not in the next step
     result.report = Report(list(findings))
     result.exact_duplicate_groups, result.exact_duplicate_files = groups, files
     result.seconds = time.perf_counter() - started
@@ -428,6 +430,14 @@ def _row(entry: FileEntry, facts: file_probe.FileFacts, root, source, meta_rows)
         facts.message or None,
     )
     return base + (_meta_values(meta_rows, entry.path) if meta_rows is not None else ())
+
+
+def _checkpoint(ws) -> None:
+    con = ws.connect()
+    try:
+        con.execute("PRAGMA wal_checkpoint(PASSIVE)")
+    finally:
+        con.close()
 
 
 def _write_rows(ws, rows, with_metadata, now) -> None:
