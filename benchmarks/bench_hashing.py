@@ -21,6 +21,7 @@ itself is more than 15x the imagehash loop (the noise level decides).
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import tempfile
 import time
@@ -92,6 +93,9 @@ def main(argv=None) -> None:
                 run()
                 best[name] = min(best[name], time.perf_counter() - t)
     rate = {k: n / v for k, v in best.items()}
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    print(f"machine: {os.cpu_count()} cores, 1-minute load average {load:.1f} at the end "
+          "(above the core count, a second worker finds no idle core)")
     for k, v in rate.items():
         print(f"  {k:<17} {v:8.1f} images/s   ({best[k] / n * 1e3:6.1f} ms/image)")
     r_a = rate["curate 1 worker"] / rate["imagehash loop"]
