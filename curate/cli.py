@@ -103,8 +103,10 @@ def init_command(workspace: str) -> int:
 @click.option("--root", type=click.Path(), help="Without FOLDER: where the CSV's relative paths start "
               "(default: the CSV's folder); every listed file must lie under it.")
 @click.option("--workers", type=click.IntRange(min=1), help="Threads reading files (default: up to 2).")
+@click.option("--max-rows", type=click.IntRange(0), default=20, show_default=True,
+              help="Problems to list under the summary line (all are in the problems table).")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bars.")
-def scan_command(workspace, folder, source, metadata, columns, root, workers, quiet) -> int:
+def scan_command(workspace, folder, source, metadata, columns, root, workers, max_rows, quiet) -> int:
     """Scan FOLDER (JPEG, PNG, TIFF, BMP, WebP) into WORKSPACE, or only the files --metadata lists.
 
     Records per file its path, size, modification time, SHA-256, pixel size,
@@ -139,6 +141,8 @@ def scan_command(workspace, folder, source, metadata, columns, root, workers, qu
             progress=not quiet, workers=workers,
         )
     click.echo(result.summary())
+    for line in result.report.summary(max_rows=max_rows).splitlines()[1:]:
+        click.echo(line)
     return EXIT_FINDINGS if not result.report.ok else EXIT_OK
 
 

@@ -102,3 +102,13 @@ def test_help_documents_exit_codes():
     result = CliRunner().invoke(main, ["scan", "--help"])
     assert result.exit_code == 0
     assert "2  usage or input error" in result.output and "--metadata" in result.output
+
+
+def test_problem_rows_are_listed_under_the_summary_up_to_max_rows(tmp_path, folder):
+    for i in range(3):
+        (folder / f"empty{i}.jpg").write_bytes(b"")
+    result = _run(tmp_path / "ws", folder, "-q", "--max-rows", "2")
+    lines = result.output.splitlines()
+    assert result.exit_code == 1 and "3 problems (3 zero_byte)" in lines[0]
+    assert [line.split(":")[0].strip() for line in lines[1:3]] == ["zero_byte", "zero_byte"]
+    assert lines[3].strip() == "... and 1 more"
