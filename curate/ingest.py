@@ -6,8 +6,8 @@ Both record per file: path, size, modification time, SHA-256, pixel width and
 height, Pillow mode and format, whether it decodes, and the metadata joined
 by path (patient, lesion, raw diagnosis label, modality, body site, capture date).
 
-A *source* (a clinic, an archive) is the unit of a scan. Scanning a source
-again:
+A *source* (a clinic, an archive) is the unit of a scan; a file (a path)
+belongs to the source that scanned it last. Scanning a source again:
 
 - reuses the stored digest and image facts of every file whose path, size
   and ``mtime_ns`` are unchanged, so an unchanged tree costs one ``stat`` per

@@ -5,7 +5,8 @@ A source describes its images in a CSV whose column names are its own. A
 
     path, patient, lesion, label, modality, body_site, capture_date
 
-Only ``path`` is required. A field left out of the mapping is taken from a
+Only ``path`` is required; paths are absolute or relative to the scanned
+folder, with ``/`` between folder names. A field left out of the mapping is taken from a
 column of the same name (or of its catalog name, e.g. ``patient_id``) when the
 CSV has one.
 
