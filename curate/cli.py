@@ -14,6 +14,7 @@ returns its exit code. No logic lives here that the Python API lacks.
 from __future__ import annotations
 
 import functools
+import inspect
 import sys
 import traceback
 
@@ -54,7 +55,7 @@ def command(group: click.Group, name: str, short_help: str):
                 sys.exit(EXIT_INTERNAL)
             sys.exit(code or EXIT_OK)
 
-        doc = (func.__doc__ or short_help).rstrip() + "\n\n" + EXIT_CODES_HELP
+        doc = inspect.cleandoc(func.__doc__ or short_help) + "\n\n" + EXIT_CODES_HELP
         return group.command(name, short_help=short_help, help=doc)(run)
 
     return decorate
