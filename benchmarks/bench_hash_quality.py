@@ -30,7 +30,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from hash_sample_images import demo_originals, jpeg_bytes, skimage_photos  # noqa: E402
 
-from curate.hash_files import CODE_COLUMNS, decode_for_hashing  # noqa: E402
+from curate.hash_files import decode_for_hashing  # noqa: E402
 from curate.hashing import PIL_TRANSPOSE, hash_thumbnail  # noqa: E402
 
 FAMILIES = ["ahash", "dhash", "phash", "whash", "colorhash"]
