@@ -27,7 +27,6 @@ Usage::
 from __future__ import annotations
 
 import argparse
-import io
 import os
 import sys
 import tempfile
