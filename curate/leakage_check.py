@@ -178,6 +178,7 @@ def near_duplicate_pairs(
         ``path``, ``reason`` (``unreadable_file``), ``message``: files whose
         bytes were read but which could not be decoded as images.
     """
+    from curate.crop_files import upgrade_crop_pairs
     from curate.hash_files import hash_files
     from curate.near_duplicates import DEFAULT_RADIUS, score_pairs
     from curate.report import LeakReason
@@ -194,6 +195,7 @@ def near_duplicate_pairs(
     hashes = hash_files(absolute, workspace=ws, workers=workers, progress=progress)
     report = hashes.attrs["report"]
     table_path = dict(zip(absolute, readable["path"]))
+    absolute_of = dict(zip(readable["path"], absolute))
     unhashable = pd.DataFrame(
         [(table_path.get(f.file, f.file), LeakReason.UNREADABLE_FILE.value,
           f"not readable as an image ({f.as_dict()['reason']}): {f.message}") for f in report],
@@ -203,6 +205,9 @@ def near_duplicate_pairs(
     catalog = pd.DataFrame({"image_id": range(len(hashed)), "sha256": hashed["sha256"]})
     codes = hashes.drop(columns=["path"]).drop_duplicates("sha256")
     scored = score_pairs(catalog, codes, radius=radius, workers=workers)
+    # second stage: confirmed crops become near (the same check as curate.pair_store uses)
+    scored = upgrade_crop_pairs(scored, dict(enumerate(absolute_of[p] for p in hashed["path"])),
+                                progress=progress)
     path = hashed["path"].to_numpy()
     by_path = scored.drop(columns=["image_a", "image_b", "conflict"]).assign(
         path_a=path[scored["image_a"].to_numpy()],

@@ -1,0 +1,255 @@
+"""Second-stage crop check: is one image a crop of the other (possibly turned or flipped)?
+
+Pure: takes two in-memory images (PIL) and returns a :class:`CropMatch`; it never
+opens files. The file layer is :mod:`curate.crop_files`.
+
+How a pair is checked:
+
+1. Both images are made grey and reduced (:data:`WORK_SIDE` pixels on the long
+   side for the fine search, :data:`COARSE_SIDE` for the coarse one).
+2. **Alignment.** Each image in turn plays the crop ("template") and the other the
+   original. The template, in each of the 8 rotations/flips
+   (:data:`curate.hashing.DIHEDRAL_TRANSFORMS` order), is scaled so that its width
+   covers a share ``f`` of the original's width (its height follows its own aspect
+   ratio), ``f`` on a grid over [:data:`MIN_KEEP`, 1]; every offset is scored by
+   normalised cross-correlation (NCC, computed with ``scipy.signal.fftconvolve``
+   and running sums). The best (direction, orientation, scale) of the coarse search
+   is refined at the fine size on a finer grid around the coarse scale.
+3. **Confirmation.** The aligned region of the original and the turned template are
+   hashed again with :func:`curate.hashing.average_hash`,
+   :func:`~curate.hashing.difference_hash`, :func:`~curate.hashing.dct_hash` and
+   :func:`~curate.hashing.wavelet_hash`. A crop is *confirmed* when the NCC is at
+   least :data:`MIN_NCC` **and** at least :data:`MIN_AGREEING` of these 4 hash
+   families are within their :data:`CONFIRM_THRESHOLDS`: several measures must agree,
+   never one threshold on one hash.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from PIL import Image
+from scipy import fft as sp_fft
+from scipy.ndimage import gaussian_filter
+
+from curate.hashing import (
+    PIL_TRANSPOSE,
+    average_hash,
+    dct_hash,
+    difference_hash,
+    wavelet_hash,
+)
+
+__all__ = ["CropMatch", "check_crop", "MIN_NCC", "MIN_AGREEING", "CONFIRM_THRESHOLDS"]
+
+#: Long side (pixels) of the grey images of the fine search and of the confirming hashes.
+WORK_SIDE = 128
+#: Long side (pixels) of the coarse search over all orientations, directions and scales.
+COARSE_SIDE = 48
+#: Smallest share of the original's width the crop may keep (a little under the 0.75 target).
+MIN_KEEP = 0.70
+#: Scales tried in the coarse search (share of the original's width).
+COARSE_SCALES = np.linspace(MIN_KEEP, 1.0, 7)
+#: Steps around the coarse scale tried in the fine search.
+FINE_STEPS = np.linspace(-0.04, 0.04, 9)
+#: Smallest normalised cross-correlation of the aligned region for a confirmed crop.
+MIN_NCC = 0.95
+#: Smallest NCC of the fine detail (image minus a Gaussian blur of sigma DETAIL_SIGMA pixels).
+MIN_DETAIL_NCC = 0.5
+#: Gaussian sigma (pixels at WORK_SIDE) separating fine detail from the smooth layout.
+DETAIL_SIGMA = 2.0
+#: Largest Hamming distance (bits, inclusive) at which each re-computed hash counts as agreeing.
+CONFIRM_THRESHOLDS = {"ahash": 3, "dhash": 6, "phash": 6, "whash": 3}
+#: How many of the 4 hash families must agree.
+MIN_AGREEING = 3
+
+
+@dataclass(frozen=True)
+class CropMatch:
+    """The best alignment of a crop inside an original, and the evidence for it.
+
+    Attributes
+    ----------
+    confirmed : bool
+        NCC >= :data:`MIN_NCC` and >= :data:`MIN_AGREEING` hash families agree.
+    crop_is_a : bool
+        True when the first image given is the crop (of the second).
+    orientation : int
+        0..7: the rotation/flip (:data:`curate.hashing.DIHEDRAL_TRANSFORMS`) of the
+        crop that aligns it with the original.
+    scale : float
+        Share of the original's width the crop covers.
+    box : tuple of float
+        (left, top, right, bottom) of the crop in the original, as fractions of its sides.
+    ncc : float
+        Normalised cross-correlation of the aligned region, -1..1.
+    detail_ncc : float
+        The same for the fine detail (image minus its Gaussian blur), -1..1.
+    distances : dict
+        Hamming distances (bits) of the re-computed hashes, by family.
+    agreeing : int
+        How many hash families are within :data:`CONFIRM_THRESHOLDS`.
+    """
+
+    confirmed: bool
+    crop_is_a: bool
+    orientation: int
+    scale: float
+    box: tuple
+    ncc: float
+    detail_ncc: float
+    distances: dict
+    agreeing: int
+
+
+def _grey(image: Image.Image, long_side: int) -> np.ndarray:
+    if not isinstance(image, Image.Image):
+        raise TypeError(f"expected a PIL.Image.Image, got {type(image).__name__}")
+    g = image.convert("L")
+    f = long_side / max(g.size)
+    size = (max(8, round(g.width * f)), max(8, round(g.height * f)))
+    return np.asarray(g.resize(size, Image.Resampling.BILINEAR), dtype=np.float64)
+
+
+def _turn(a: np.ndarray, t: int) -> np.ndarray:
+    return (a, np.rot90(a, 1), np.rot90(a, 2), np.rot90(a, 3), a[:, ::-1], a[::-1, :], a.T,
+            a[::-1, ::-1].T)[t]
+
+
+class _Original:
+    """An original image prepared for NCC of many templates: FFT and running sums, once."""
+
+    def __init__(self, image: np.ndarray):
+        self.image = image
+        self.shape = image.shape
+        H, W = image.shape
+        self.fft_shape = (sp_fft.next_fast_len(2 * H, real=True), sp_fft.next_fast_len(2 * W, real=True))
+        self.spectrum = sp_fft.rfft2(image, self.fft_shape)
+        self.c1 = np.pad(image, ((1, 0), (1, 0))).cumsum(0).cumsum(1)
+        self.c2 = np.pad(image * image, ((1, 0), (1, 0))).cumsum(0).cumsum(1)
+
+    def ncc_map(self, template: np.ndarray) -> np.ndarray:
+        """NCC of the template at every offset where it fits inside the image ('valid')."""
+        H, W = self.shape
+        th, tw = template.shape
+        t = template - template.mean()
+        t_norm = np.sqrt((t * t).sum())
+        full = sp_fft.irfft2(self.spectrum * sp_fft.rfft2(t[::-1, ::-1], self.fft_shape), self.fft_shape)
+        num = full[th - 1:H, tw - 1:W]
+
+        def window(c):
+            return c[th:, tw:] - c[:-th, tw:] - c[th:, :-tw] + c[:-th, :-tw]
+
+        n = th * tw
+        var = window(self.c2) - window(self.c1) ** 2 / n
+        den = np.sqrt(np.maximum(var, 0.0)) * t_norm
+        return np.where(den > 1e-6 * n, num / np.maximum(den, 1e-12), 0.0)
+
+
+def _ncc(x: np.ndarray, y: np.ndarray) -> float:
+    """Normalised cross-correlation of two arrays of one shape (Pearson correlation)."""
+    x, y = x - x.mean(), y - y.mean()
+    den = np.sqrt((x * x).sum() * (y * y).sum())
+    return float((x * y).sum() / den) if den > 1e-12 else 0.0
+
+
+def _detail(a: np.ndarray) -> np.ndarray:
+    """Fine detail: the image minus a Gaussian blur of it (a band-pass of the small image)."""
+    return a - gaussian_filter(a, DETAIL_SIGMA, mode="nearest")
+
+
+def _template(crop: np.ndarray, width: int, height_limit: int, shape_hw) -> np.ndarray | None:
+    """The crop resized to ``width`` pixels (aspect kept), or None when it does not fit."""
+    h, w = crop.shape
+    th = round(width * h / w)
+    if width < 6 or th < 6 or width > shape_hw[1] or th > shape_hw[0] or th < MIN_KEEP * shape_hw[0] - 1:
+        return None
+    img = Image.fromarray(crop.astype(np.float32), mode="F").resize((width, th), Image.Resampling.BILINEAR)
+    return np.asarray(img, dtype=np.float64)
+
+
+def _best_at(original: _Original, crop: np.ndarray, scales) -> tuple[float, float, int, int, int, int]:
+    """(ncc, scale, x, y, width, height) of the best placement over the scales."""
+    best = (-2.0, 0.0, 0, 0, 0, 0)
+    for f in scales:
+        if not MIN_KEEP - 0.03 <= f <= 1.0:
+            continue
+        tmpl = _template(crop, round(f * original.shape[1]), original.shape[0], original.shape)
+        if tmpl is None:
+            continue
+        m = original.ncc_map(tmpl)
+        k = int(np.argmax(m))
+        y, x = divmod(k, m.shape[1])
+        if m.flat[k] > best[0]:
+            best = (float(m.flat[k]), float(f), x, y, tmpl.shape[1], tmpl.shape[0])
+    return best
+
+
+def _hash_distances(region: Image.Image, crop: Image.Image) -> dict:
+    return {
+        "ahash": average_hash(region) - average_hash(crop),
+        "dhash": difference_hash(region) - difference_hash(crop),
+        "phash": dct_hash(region) - dct_hash(crop),
+        "whash": wavelet_hash(region, image_scale=64) - wavelet_hash(crop, image_scale=64),
+    }
+
+
+def check_crop(image_a: Image.Image, image_b: Image.Image) -> CropMatch:
+    """Check whether one of two images is a crop (keeping >= 70% of the width) of the other.
+
+    Either image may be the crop, in any of the 8 rotations/flips, at any size.
+
+    Parameters
+    ----------
+    image_a, image_b : PIL.Image.Image
+        The two pictures (any mode; reduced decodes are enough, about 128 pixels
+        or more on the long side).
+
+    Returns
+    -------
+    CropMatch
+        The best alignment and whether it is confirmed.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from PIL import Image
+    >>> rng = np.random.default_rng(0)
+    >>> big = Image.fromarray((rng.random((12, 16)) * 255).astype(np.uint8)).resize((160, 120))
+    >>> m = check_crop(big, big.crop((10, 8, 150, 113)).rotate(90, expand=True))
+    >>> m.confirmed, m.crop_is_a, m.orientation
+    (True, False, 3)
+    >>> check_crop(big, Image.linear_gradient("L").resize((120, 120))).confirmed
+    False
+    """
+    coarse = [_grey(image_a, COARSE_SIDE), _grey(image_b, COARSE_SIDE)]
+    best = None
+    for crop_i in (0, 1):
+        original, crop = _Original(coarse[1 - crop_i]), coarse[crop_i]
+        for t in range(8):
+            ncc, f, *_ = _best_at(original, _turn(crop, t), COARSE_SCALES)
+            if best is None or ncc > best[0]:
+                best = (ncc, crop_i, t, f)
+    _, crop_i, t, f0 = best
+    fine = [_grey(image_a, WORK_SIDE), _grey(image_b, WORK_SIDE)]
+    original, crop = fine[1 - crop_i], _turn(fine[crop_i], t)
+    ncc, f, x, y, w, h = _best_at(_Original(original), crop, f0 + FINE_STEPS)
+    if w == 0:  # nothing fits at the fine size
+        return CropMatch(False, crop_i == 0, t, f0, (0.0, 0.0, 0.0, 0.0), float(best[0]), 0.0, {}, 0)
+    piece = original[y:y + h, x:x + w]
+    template = _template(crop, w, h, (h, w))
+    detail_ncc = _ncc(_detail(piece), _detail(template))
+    region = Image.fromarray(np.clip(piece, 0, 255).astype(np.uint8))
+    turned = (image_a, image_b)[crop_i].convert("L")
+    if PIL_TRANSPOSE[t] is not None:
+        turned = turned.transpose(PIL_TRANSPOSE[t])
+    if max(turned.size) > 4 * WORK_SIDE:
+        turned = Image.fromarray(np.clip(crop, 0, 255).astype(np.uint8))
+    distances = {k: int(v) for k, v in _hash_distances(region, turned).items()}
+    agreeing = sum(distances[k] <= CONFIRM_THRESHOLDS[k] for k in CONFIRM_THRESHOLDS)
+    H, W = original.shape
+    box = (x / W, y / H, (x + w) / W, (y + h) / H)
+    confirmed = ncc >= MIN_NCC and detail_ncc >= MIN_DETAIL_NCC and agreeing >= MIN_AGREEING
+    return CropMatch(bool(confirmed), crop_i == 0, int(t), float(f), box, float(ncc), float(detail_ncc),
+                     distances, int(agreeing))

@@ -1,0 +1,185 @@
+"""The second-stage crop check: crops are confirmed, different pictures are not."""
+
+import io
+import os
+
+import numpy as np
+import pandas as pd
+import pytest
+from PIL import Image, ImageDraw, ImageFilter
+
+from curate.crop_check import check_crop
+from curate.crop_files import pairs_to_check, upgrade_crop_pairs
+from curate.hashing import PIL_TRANSPOSE
+
+
+def _skin(seed, size=(240, 180)):
+    """A skin-like background: a smooth tone gradient plus fine grain (drawn here)."""
+    rng = np.random.default_rng(seed)
+    w, h = size
+    base = np.array([205, 160, 135], float) + rng.normal(0, 8, 3)
+    yy, xx = np.mgrid[0:h, 0:w] / max(w, h)
+    shade = 18 * (xx * rng.uniform(-1, 1) + yy * rng.uniform(-1, 1))
+    grain = rng.normal(0, 5, (h, w))
+    arr = base[None, None, :] + (shade + grain)[..., None]
+    return Image.fromarray(np.clip(arr, 0, 255).astype(np.uint8))
+
+
+def _lesion(img, seed, colours=((90, 55, 40), (60, 35, 30))):
+    """A blob of a few overlapping ellipses in the given colours, slightly blurred."""
+    rng = np.random.default_rng(seed)
+    out = img.copy()
+    draw = ImageDraw.Draw(out)
+    w, h = img.size
+    for k in range(6):
+        cx, cy = rng.uniform(0.3, 0.7) * w, rng.uniform(0.3, 0.7) * h
+        rx, ry = rng.uniform(0.06, 0.2) * w, rng.uniform(0.06, 0.2) * h
+        draw.ellipse([cx - rx, cy - ry, cx + rx, cy + ry], fill=colours[k % len(colours)])
+    return out.filter(ImageFilter.GaussianBlur(1.2))
+
+
+def _random_crop(img, rng, low=0.75, high=0.95):
+    kw, kh = rng.uniform(low, high, 2)
+    cw, ch = int(img.width * kw), int(img.height * kh)
+    x0 = int(rng.integers(0, img.width - cw + 1))
+    y0 = int(rng.integers(0, img.height - ch + 1))
+    return img.crop((x0, y0, x0 + cw, y0 + ch))
+
+
+def _jpeg(img, quality=75):
+    buf = io.BytesIO()
+    img.convert("RGB").save(buf, "JPEG", quality=quality)
+    buf.seek(0)
+    return Image.open(buf).convert("RGB")
+
+
+# --- drawn images ----------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_random_crops_of_drawn_lesions_are_confirmed(seed):
+    rng = np.random.default_rng(100 + seed)
+    original = _lesion(_skin(seed), seed)
+    crop = unturned = _random_crop(original, rng)
+    t = int(rng.integers(0, 8))
+    if t:
+        crop = crop.transpose(PIL_TRANSPOSE[t])
+    if seed % 2:
+        crop = _jpeg(crop.resize((crop.width * 3 // 4, crop.height * 3 // 4)))
+    m = check_crop(original, crop)
+    assert m.confirmed, m
+    assert not m.crop_is_a
+    # the orientation that aligns the crop is the inverse of the turn applied to it
+    back = crop if m.orientation == 0 else crop.transpose(PIL_TRANSPOSE[m.orientation])
+    assert back.width / back.height == pytest.approx(unturned.width / unturned.height, rel=0.02)
+    # either argument order works
+    assert check_crop(crop, original).crop_is_a
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_look_alike_lesions_on_the_same_skin_are_not_confirmed(seed):
+    # hard negatives: the same skin, the same two colours, a different blob
+    skin = _skin(seed)
+    a, b = _lesion(skin, 1000 + seed), _lesion(skin, 2000 + seed)
+    assert not check_crop(a, b).confirmed
+    assert not check_crop(a, _random_crop(b, np.random.default_rng(seed))).confirmed
+
+
+def test_different_drawn_images_are_not_confirmed():
+    for seed in range(5):
+        a = _lesion(_skin(seed), seed)
+        b = _lesion(_skin(seed + 50), seed + 50)
+        assert not check_crop(a, b).confirmed
+
+
+def test_whole_image_is_found_at_scale_one_and_full_box():
+    img = _lesion(_skin(3), 3)
+    m = check_crop(img, img)
+    assert m.confirmed and m.scale == pytest.approx(1.0, abs=0.02)
+    assert m.box == pytest.approx((0.0, 0.0, 1.0, 1.0), abs=0.03)
+
+
+def test_non_image_argument_is_a_type_error():
+    with pytest.raises(TypeError, match="PIL.Image.Image"):
+        check_crop(np.zeros((8, 8)), Image.new("L", (8, 8)))
+
+
+# --- scikit-image sample photographs ---------------------------------------------------------
+
+# Source: scikit-image's sample data (skimage.data), photographs shipped in its wheel.
+SAMPLES = ("astronaut", "camera", "chelsea", "coffee", "rocket", "coins", "moon", "page")
+
+
+def _samples():
+    data = pytest.importorskip("skimage.data")
+    out = {}
+    for name in SAMPLES:
+        arr = np.asarray(getattr(data, name)())
+        out[name] = Image.fromarray(arr.astype(np.uint8)).reduce(2)
+    return out
+
+
+def test_random_crops_of_sample_photographs_are_confirmed():
+    rng = np.random.default_rng(7)
+    for k, (name, img) in enumerate(_samples().items()):
+        crop = _random_crop(img, rng)
+        if k % 3 == 1:
+            crop = crop.transpose(PIL_TRANSPOSE[int(rng.integers(1, 8))])
+        if k % 2:
+            crop = _jpeg(crop, 70)
+        m = check_crop(img, crop)
+        assert m.confirmed, (name, m)
+
+
+def test_different_sample_photographs_are_not_confirmed():
+    photos = list(_samples().items())
+    for (na, a), (nb, b) in zip(photos, photos[1:] + photos[:1]):
+        assert not check_crop(a, b).confirmed, (na, nb)
+        assert not check_crop(a, _random_crop(b, np.random.default_rng(0))).confirmed, (na, nb)
+
+
+# --- the file layer -------------------------------------------------------------------------
+
+
+def test_pairs_to_check_takes_possible_pairs_with_crop_evidence():
+    p = pd.DataFrame({"verdict": ["possible", "possible", "near", "possible"], "d_crop": [8, 9, 1, None]})
+    assert pairs_to_check(p).tolist() == [True, False, False, False]
+
+
+def test_upgrade_marks_only_confirmed_crops(tmp_path):
+    original = _lesion(_skin(1), 1)
+    crop = _random_crop(original, np.random.default_rng(1))
+    other = _lesion(_skin(1), 99)
+    paths = {}
+    for i, (name, img) in enumerate((("o.png", original), ("c.png", crop), ("x.png", other))):
+        img.save(tmp_path / name)
+        paths[i] = str(tmp_path / name)
+    paths[3] = str(tmp_path / "gone.png")  # vanished since hashing: the pair is left alone
+    pairs = pd.DataFrame({"image_a": [0, 0, 0, 0], "image_b": [1, 2, 3, 2],
+                          "verdict": ["possible", "possible", "possible", "near"],
+                          "d_crop": [6, 6, 6, 0], "crop": [0, 0, 0, 0], "orientation": [0, 0, 0, 0]})
+    out = upgrade_crop_pairs(pairs, paths, progress=False)
+    assert out["verdict"].tolist() == ["near", "possible", "possible", "near"]
+    assert out["crop"].tolist() == [1, 0, 0, 0]
+    assert out["crop_checked"].tolist() == [1, 1, 0, 0]
+    assert out.attrs["crop_checked"] == 3
+    assert out.loc[0, "crop_ncc"] > 0.95 and pd.isna(out.loc[3, "crop_ncc"])
+    assert pairs["verdict"].tolist()[0] == "possible"  # input left unchanged
+
+
+def test_find_near_duplicates_calls_a_crop_near(tmp_path):
+    from curate.pair_store import find_near_duplicates
+
+    rng = np.random.default_rng(5)
+    for k in range(4):
+        _lesion(_skin(k), k).save(tmp_path / f"img{k}.png")
+    original = _lesion(_skin(9), 9)
+    original.save(tmp_path / "orig.png")
+    _random_crop(original, rng, 0.8, 0.85).save(tmp_path / "orig_crop.png")
+    pairs = find_near_duplicates(tmp_path, workers=1, progress=False)
+    names = [tuple(sorted((os.path.basename(a), os.path.basename(b)))) for a, b in
+             zip(pairs["path_a"], pairs["path_b"])]
+    got = dict(zip(names, zip(pairs["verdict"], pairs["crop"])))
+    assert got.get(("orig.png", "orig_crop.png"), ("missed", 0))[0] == "near", pairs
+    assert got[("orig.png", "orig_crop.png")][1] == 1
+    assert all(v != "near" for n, (v, _) in got.items() if n != ("orig.png", "orig_crop.png"))
