@@ -31,6 +31,7 @@ from curate.thumbnails import (
     ORIENTATION_NAMES,
     VIEW_MODES,
     ThumbnailCache,
+    best_orientation,
     fit_square,
     pair_pictures,
     to_jpeg,
@@ -308,15 +309,16 @@ class ReviewWidget(_View):
             self.pair_info.value = "<b>no candidate pairs match this filter</b>"
             self._say(message)
             return
-        pics = pair_pictures(self._picture(item.image_a), self._picture(item.image_b),
-                             orientation=item.orientation, size=self.size, mode=self.mode)
+        a, b = self._picture(item.image_a), self._picture(item.image_b)
+        turn = best_orientation(a, b, item.orientation)
+        pics = pair_pictures(a, b, orientation=turn, size=self.size, mode=self.mode)
         for pic, im in zip(self.pictures, pics):
             pic.value = to_jpeg(im)
         self.panels[2].layout.display = None if len(pics) == 3 else "none"
         self.captions[0].value = _image_caption(s.image_info(item.image_a), "A")
         self.captions[1].value = _image_caption(s.image_info(item.image_b), "B")
         self.captions[2].value = f"<b>{_VIEW_WORDS[self.mode]}</b> of A and turned B"
-        self.pair_info.value = _pair_caption(item)
+        self.pair_info.value = _pair_caption(item, turn)
         self.last_render_ms = (time.perf_counter() - t0) * 1000.0
         self._say(message)
         self._prefetch()
@@ -463,14 +465,14 @@ def _image_caption(info: dict, title: str) -> str:
     return f"<b>{html.escape(title)}</b><table style='font-size:12px'>{body}</table>"
 
 
-def _pair_caption(item) -> str:
+def _pair_caption(item, turn: int) -> str:
     dist = ", ".join(f"{k} {('—' if v is None else v)}" for k, v in item.distances.items())
     decided = DECISION_WORDS[item.decision] if item.decision else "not decided yet"
     conflict = html.escape(item.conflict) if item.conflict else "none"
     return (
         f"<b>verdict:</b> {html.escape(item.verdict)} &nbsp; <b>score:</b> {item.score:.2f} "
         f"&nbsp; <b>conflict:</b> {conflict} &nbsp; <b>B shown:</b> "
-        f"{ORIENTATION_NAMES[item.orientation]}{', cropped' if item.crop else ''}<br>"
+        f"{ORIENTATION_NAMES[turn]}{', cropped' if item.crop else ''}<br>"
         f"<b>Hamming distances (bits):</b> {html.escape(dist)}<br>"
         f"<b>decision:</b> {html.escape(decided)}"
     )

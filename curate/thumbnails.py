@@ -57,13 +57,32 @@ ORIENTATION_NAMES = (
 INVERSE_ORIENTATION = (0, 3, 2, 1, 4, 5, 6, 7)
 
 
-def align_to(a: Image.Image, b: Image.Image, orientation: int | None) -> Image.Image:
-    """``b`` turned onto ``a`` by the pair's ``orientation``, or by its inverse if that fits better.
+def best_orientation(a: Image.Image, b: Image.Image, orientation: int | None) -> int:
+    """The code that turns ``b`` onto ``a``: ``orientation``, or its inverse if that fits better.
 
     The pairs table gives the transform that lines the two images up; for a
     quarter turn (codes 1 and 3) the direction matters, so both directions are
-    tried on small greyscale copies and the one closer to ``a`` is used. For
-    every other code the transform is its own inverse.
+    tried on small greyscale copies and the one closer to ``a`` is returned.
+    Every other code is its own inverse and is returned as it is.
+
+    Examples
+    --------
+    >>> from PIL import Image, ImageDraw
+    >>> a = Image.new("L", (40, 40)); ImageDraw.Draw(a).rectangle((0, 0, 10, 20), fill=255)
+    >>> b = a.transpose(Image.Transpose.ROTATE_90)
+    >>> best_orientation(a, b, 1), best_orientation(a, b, 3), best_orientation(a, b, 4)
+    (3, 3, 4)
+    """
+    k = 0 if orientation is None else int(orientation)
+    first = orient(b, k)
+    inverse = INVERSE_ORIENTATION[k]
+    if inverse == k:
+        return k
+    return k if _mismatch(a, first) <= _mismatch(a, orient(b, inverse)) else inverse
+
+
+def align_to(a: Image.Image, b: Image.Image, orientation: int | None) -> Image.Image:
+    """``b`` turned onto ``a`` by :func:`best_orientation`.
 
     Examples
     --------
@@ -73,12 +92,7 @@ def align_to(a: Image.Image, b: Image.Image, orientation: int | None) -> Image.I
     >>> align_to(a, b, 1).tobytes() == a.tobytes() == align_to(a, b, 3).tobytes()
     True
     """
-    k = 0 if orientation is None else int(orientation)
-    first = orient(b, k)
-    if INVERSE_ORIENTATION[k] == k:
-        return first
-    second = orient(b, INVERSE_ORIENTATION[k])
-    return first if _mismatch(a, first) <= _mismatch(a, second) else second
+    return orient(b, best_orientation(a, b, orientation))
 
 
 def _mismatch(a: Image.Image, b: Image.Image) -> float:

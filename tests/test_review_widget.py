@@ -156,3 +156,12 @@ def test_an_empty_workspace_shows_an_empty_queue_without_errors(tmp_path):
     r.press("1")
     assert "queue is empty" in r.status.value and decisions(ws) == []
     assert "no clusters" in ClusterWidget(ws, reviewer="ana").status.value
+
+
+def test_the_caption_names_the_turn_actually_applied(ws):
+    # image 2 is image 1 turned 90 degrees anticlockwise; 270 anticlockwise turns it back
+    with ws.transaction() as con:  # the pairs table may name the quarter turn either way
+        con.execute("UPDATE pairs SET orientation = 1 WHERE image_a = 1 AND image_b = 2")
+    r = ReviewWidget(ws, reviewer="ana", verdict="near")
+    assert r.session.current.key == (1, 2) and r.session.current.orientation == 1
+    assert "turned 270° anticlockwise" in r.pair_info.value
