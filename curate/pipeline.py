@@ -214,7 +214,7 @@ def check_split_leakage(ctx: PipelineContext) -> dict:
 
     table = workspace_split_table(ctx.workspace)
     table = table[["path", "split", "patient_id", "lesion_id", "sha256", "source"]]
-    report = check_leakage(table, root="/", cache=ctx.workspace.path / "check-cache",
+    report = check_leakage(table, root="/", cache=ctx.workspace.path,
                            patient_scope="source", lesion_scope="source", progress=ctx.progress)
     ctx.leak_free = report.ok
     return {"images": report.n_images, "leaks": report.counts()}
@@ -232,6 +232,24 @@ def freeze_demo_split(ctx: PipelineContext) -> dict:
     return {"frozen": "yes", "files": ", ".join(str(p) for p in frozen.files.values())}
 
 
+def find_identifying_metadata(ctx: PipelineContext) -> dict:
+    """Embedded metadata (Exif) that may identify patients; nothing is changed."""
+    from curate.exif_files import identifying_metadata
+
+    catalog = ctx.workspace.catalog()
+    fields = identifying_metadata(catalog.loc[catalog["decodable"] == 1, "path"], progress=ctx.progress)
+    found = fields.groupby("finding")["path"].nunique()
+    return {"images with identifying fields": int(fields["path"].nunique()),
+            "by kind": {str(k): int(v) for k, v in found.items()}}
+
+
+def write_workspace_report(ctx: PipelineContext) -> dict:
+    """Write the Markdown report with its plots into ``WS/report``."""
+    from curate.workspace_report import write_report
+
+    return {"report": str(write_report(ctx.workspace))}
+
+
 def _counts(values) -> dict:
     import pandas as pd
 
@@ -241,6 +259,7 @@ def _counts(values) -> dict:
 #: the steps run in order; a step is added here once its library code exists
 STEPS: tuple[Step, ...] = (
     Step("scan", scan_sources),
+    Step("exif", find_identifying_metadata),
     Step("hash", hash_images),
     Step("pairs", find_duplicate_pairs),
     Step("taxonomy", map_labels),
@@ -250,6 +269,7 @@ STEPS: tuple[Step, ...] = (
     Step("split", propose_demo_split),
     Step("check", check_split_leakage),
     Step("freeze", freeze_demo_split),
+    Step("report", write_workspace_report),
 )
 
 
