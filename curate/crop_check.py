@@ -12,8 +12,10 @@ How a pair is checked:
    (:data:`curate.hashing.DIHEDRAL_TRANSFORMS` order), is scaled so that its width
    covers a share ``f`` of the original's width (its height follows its own aspect
    ratio), ``f`` on a grid over [:data:`MIN_KEEP`, 1]; every offset is scored by
-   normalised cross-correlation (NCC, computed with ``scipy.signal.fftconvolve``
-   and running sums). The best (direction, orientation, scale) of the coarse search
+   normalised cross-correlation (NCC, computed by FFT with running sums for the
+   window statistics). All 16 (direction, orientation) choices are first tried at
+   :data:`PROBE_SCALES`; the best :data:`KEEP_ORIENTATIONS` go on to the full scale
+   grid. The best (direction, orientation, scale) of the coarse search
    is refined at the fine size on a finer grid around the coarse scale.
 3. **Confirmation.** The aligned region of the original and the turned template are
    hashed again with :func:`curate.hashing.average_hash`,
@@ -51,6 +53,12 @@ COARSE_SIDE = 48
 MIN_KEEP = 0.70
 #: Scales tried in the coarse search (share of the original's width).
 COARSE_SCALES = np.linspace(MIN_KEEP, 1.0, 7)
+#: Scales tried for every (direction, orientation) before the full scale search.
+PROBE_SCALES = (0.85,)
+#: How many (direction, orientation) choices go on to the full coarse scale search.
+KEEP_ORIENTATIONS = 3
+#: Largest average-hash distance (bits) of the coarse alignment for the fine stage to run.
+COARSE_MAX_AHASH = 12
 #: Steps around the coarse scale tried in the fine search.
 FINE_STEPS = np.linspace(-0.04, 0.04, 9)
 #: Smallest normalised cross-correlation of the aligned region for a confirmed crop.
@@ -224,14 +232,27 @@ def check_crop(image_a: Image.Image, image_b: Image.Image) -> CropMatch:
     False
     """
     coarse = [_grey(image_a, COARSE_SIDE), _grey(image_b, COARSE_SIDE)]
-    best = None
+    originals = [_Original(coarse[1]), _Original(coarse[0])]  # original when image a / b is the crop
+    # which image is the crop, and how it is turned: all 16 at one middle scale, then the
+    # best few over every scale
+    trials = []
     for crop_i in (0, 1):
-        original, crop = _Original(coarse[1 - crop_i]), coarse[crop_i]
         for t in range(8):
-            ncc, f, *_ = _best_at(original, _turn(crop, t), COARSE_SCALES)
-            if best is None or ncc > best[0]:
-                best = (ncc, crop_i, t, f)
+            turned = _turn(coarse[crop_i], t)
+            ncc = max(_best_at(originals[crop_i], turned, [f])[0] for f in PROBE_SCALES)
+            trials.append((ncc, crop_i, t))
+    best = None
+    for _, crop_i, t in sorted(trials, reverse=True)[:KEEP_ORIENTATIONS]:
+        ncc, f, *_ = _best_at(originals[crop_i], _turn(coarse[crop_i], t), COARSE_SCALES)
+        if best is None or ncc > best[0]:
+            best = (ncc, crop_i, t, f)
     _, crop_i, t, f0 = best
+    # early reject: the coarse aligned region must already look like the crop (average hash)
+    _, _, x, y, w, h = _best_at(originals[crop_i], _turn(coarse[crop_i], t), [f0])
+    piece = Image.fromarray(np.clip(originals[crop_i].image[y:y + h, x:x + w], 0, 255).astype(np.uint8))
+    rough = Image.fromarray(np.clip(_turn(coarse[crop_i], t), 0, 255).astype(np.uint8))
+    if w == 0 or average_hash(piece) - average_hash(rough) > COARSE_MAX_AHASH:
+        return CropMatch(False, crop_i == 0, int(t), float(f0), (0.0, 0.0, 0.0, 0.0), float(best[0]), 0.0, {}, 0)
     fine = [_grey(image_a, WORK_SIDE), _grey(image_b, WORK_SIDE)]
     original, crop = fine[1 - crop_i], _turn(fine[crop_i], t)
     ncc, f, x, y, w, h = _best_at(_Original(original), crop, f0 + FINE_STEPS)
