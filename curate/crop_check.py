@@ -21,9 +21,11 @@ How a pair is checked:
    hashed again with :func:`curate.hashing.average_hash`,
    :func:`~curate.hashing.difference_hash`, :func:`~curate.hashing.dct_hash` and
    :func:`~curate.hashing.wavelet_hash`. A crop is *confirmed* when the NCC is at
-   least :data:`MIN_NCC` **and** at least :data:`MIN_AGREEING` of these 4 hash
-   families are within their :data:`CONFIRM_THRESHOLDS`: several measures must agree,
-   never one threshold on one hash.
+   least :data:`MIN_NCC`, the NCC of the fine detail at least :data:`MIN_DETAIL_NCC`,
+   **and** at least :data:`MIN_AGREEING` of these 4 hash families, the DCT hash among
+   them, are within their :data:`CONFIRM_THRESHOLDS`, the 4 distances adding up to at
+   most :data:`MAX_TOTAL` bits: several measures must agree, never one threshold on
+   one hash.
 """
 
 from __future__ import annotations
@@ -69,8 +71,13 @@ MIN_DETAIL_NCC = 0.5
 DETAIL_SIGMA = 2.0
 #: Largest Hamming distance (bits, inclusive) at which each re-computed hash counts as agreeing.
 CONFIRM_THRESHOLDS = {"ahash": 3, "dhash": 6, "phash": 6, "whash": 3}
-#: How many of the 4 hash families must agree.
+#: How many of the 4 hash families must agree ...
 MIN_AGREEING = 3
+#: ... always including the DCT hash (whole look-alike demo lesions under a flip had the
+#: average, difference and wavelet hashes agreeing but the DCT hash 10-20 bits apart) ...
+REQUIRED_FAMILY = "phash"
+#: ... with the 4 distances adding up to at most this many bits.
+MAX_TOTAL = 12
 
 
 @dataclass(frozen=True)
@@ -80,7 +87,7 @@ class CropMatch:
     Attributes
     ----------
     confirmed : bool
-        NCC >= :data:`MIN_NCC` and >= :data:`MIN_AGREEING` hash families agree.
+        The alignment passes every confirmation rule (see the module docstring).
     crop_is_a : bool
         True when the first image given is the crop (of the second).
     orientation : int
@@ -271,6 +278,8 @@ def check_crop(image_a: Image.Image, image_b: Image.Image) -> CropMatch:
     agreeing = sum(distances[k] <= CONFIRM_THRESHOLDS[k] for k in CONFIRM_THRESHOLDS)
     H, W = original.shape
     box = (x / W, y / H, (x + w) / W, (y + h) / H)
-    confirmed = ncc >= MIN_NCC and detail_ncc >= MIN_DETAIL_NCC and agreeing >= MIN_AGREEING
+    confirmed = (ncc >= MIN_NCC and detail_ncc >= MIN_DETAIL_NCC and agreeing >= MIN_AGREEING
+                 and distances[REQUIRED_FAMILY] <= CONFIRM_THRESHOLDS[REQUIRED_FAMILY]
+                 and sum(distances.values()) <= MAX_TOTAL)
     return CropMatch(bool(confirmed), crop_i == 0, int(t), float(f), box, float(ncc), float(detail_ncc),
                      distances, int(agreeing))
