@@ -217,8 +217,9 @@ def test_cli_pairs_exit_0_without_duplicates_and_2_on_bad_workspace(tmp_path):
 def test_quality_targets_on_a_small_demo():
     """Recall per planted kind and precision of near, scored against the demo's truth folder.
 
-    Crops and colour shifts are scored by the benchmark but not asserted here: the
-    crop target (0.95 for crops keeping >= 75%) is not met yet (see docs/near_duplicates.md).
+    The crop recall target (0.95 for crops keeping >= 75%) is not met yet: some crops
+    are not candidates at all (see docs/near_duplicates.md). What is asserted for crops:
+    every crop that is found as a candidate is confirmed ``near`` by the crop check.
     """
     import importlib.util
     from pathlib import Path
@@ -233,5 +234,7 @@ def test_quality_targets_on_a_small_demo():
         if kind in per_kind.index:
             assert per_kind.loc[kind, "recall"] >= scorer.TARGETS[kind], (kind, per_kind)
     assert per_kind["n"].sum() > 10
+    if "crop>=75%" in per_kind.index:
+        assert per_kind.loc["crop>=75%", "recall"] == per_kind.loc["crop>=75%", "found"], per_kind
     assert result["near_precision"] >= scorer.NEAR_PRECISION_TARGET, result["near_precision"]
     assert set(result.get("lookalike_verdicts", {})) <= {"none", "possible"}
