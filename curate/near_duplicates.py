@@ -59,6 +59,8 @@ __all__ = [
 DEFAULT_RADIUS = 8
 #: Structural hash families, as stored.
 STRUCTURAL = ("ahash", "dhash", "phash", "whash")
+#: families searched for candidates (see _candidate_hash_pairs for why two suffice)
+CANDIDATE_FAMILIES = ("dhash", "phash")
 #: Largest distance (bits, inclusive) at which a structural hash counts as agreeing (stored
 #: orientation). Tuned on the demo scenario (see docs/near_duplicates.md).
 NEAR_THRESHOLDS = {"ahash": 4, "dhash": 6, "phash": 6, "whash": 4}
@@ -185,7 +187,13 @@ def _candidate_hash_pairs(h: pd.DataFrame, radius: int, workers) -> np.ndarray:
     """Pairs (p < q) of hash rows within ``radius`` on any family / orientation / crop window."""
     n = len(h)
     found = []
-    for family in STRUCTURAL:
+    # Only the difference and DCT hashes generate candidates. This loses no pair that
+    # scoring keeps: a kept pair has its DCT hash within the radius under some alignment
+    # (found by the DCT, rotation and crop queries below), or 3 of the 4 structural families
+    # within the radius, and 3 of 4 always include the difference or the DCT hash. The
+    # coarse average and wavelet hashes put most look-alike skin photographs within a few
+    # bits of each other, so searching on them grows the candidate set roughly with n**2.
+    for family in CANDIDATE_FAMILIES:
         i, j, _ = radius_pairs(_codes(h, family), radius, workers=workers)
         found.append((i, j))
     phash = _codes(h, "phash")

@@ -238,3 +238,50 @@ def test_quality_targets_on_a_small_demo():
         assert per_kind.loc["crop>=75%", "recall"] == per_kind.loc["crop>=75%", "found"], per_kind
     assert result["near_precision"] >= scorer.NEAR_PRECISION_TARGET, result["near_precision"]
     assert set(result.get("lookalike_verdicts", {})) <= {"none", "possible"}
+
+
+# --- candidate generation: searching the coarse hashes adds nothing -----------------------
+
+
+def _flip_bits(rng, code, n_bits):
+    mask = 0
+    for b in rng.choice(64, size=n_bits, replace=False):
+        mask |= 1 << int(b)
+    return np.uint64(int(code) ^ mask)
+
+
+def _clustered_hash_frame(seed, n_clusters=25, size=6):
+    """Hash rows in clusters: each family of each member moved 0-12 bits from its cluster's codes."""
+    rng = np.random.default_rng(seed)
+    families = ["ahash", "dhash", "phash", "whash", "colorhash"] + [f"phash_t{t}" for t in range(1, 8)]
+    rows = []
+    for c in range(n_clusters):
+        base = {f: np.uint64(rng.integers(0, 2**63)) for f in families}
+        base_crops = rng.integers(0, 2**63, size=4).astype(np.uint64)
+        for m in range(size):
+            row = {f: _flip_bits(rng, base[f], int(rng.integers(0, 13))) for f in families}
+            row["phash_t0"] = row["phash"]
+            row["crop_hashes"] = np.array([_flip_bits(rng, x, int(rng.integers(0, 13))) for x in base_crops],
+                                          dtype=np.uint64)
+            row["sha256"] = f"{c:04d}{m:04d}".ljust(64, "0")
+            rows.append(row)
+    hashes = pd.DataFrame(rows)
+    for f in families + ["phash_t0"]:
+        hashes[f] = hashes[f].astype(np.uint64)
+    catalog = pd.DataFrame({"image_id": np.arange(1, len(hashes) + 1), "sha256": hashes["sha256"]})
+    return catalog, hashes
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_searching_only_difference_and_dct_hashes_loses_no_pair(seed, monkeypatch):
+    # reference: the same scoring with every structural family searched for candidates
+    import curate.near_duplicates as nd
+
+    catalog, hashes = _clustered_hash_frame(seed)
+    fast = score_pairs(catalog, hashes, radius=8)
+    monkeypatch.setattr(nd, "CANDIDATE_FAMILIES", nd.STRUCTURAL)
+    every = score_pairs(catalog, hashes, radius=8)
+    key = ["image_a", "image_b"]
+    assert len(every) > 50
+    pd.testing.assert_frame_equal(fast.sort_values(key).reset_index(drop=True),
+                                  every.sort_values(key).reset_index(drop=True))
