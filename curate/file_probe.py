@@ -33,6 +33,9 @@ from curate.report import IngestIssue
 
 CHUNK_SIZE = 1 << 20
 
+#: SHA-256 of zero bytes (FIPS 180-4): every empty file has it, so it never marks a copy.
+EMPTY_SHA256 = hashlib.sha256(b"").hexdigest()
+
 #: file name endings (lower case) taken as images when walking a folder
 IMAGE_EXTENSIONS = frozenset(
     {".jpg", ".jpeg", ".jpe", ".jfif", ".png", ".tif", ".tiff", ".bmp", ".dib", ".webp"}

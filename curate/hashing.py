@@ -62,6 +62,9 @@ PIL_TRANSPOSE = (
     Image.Transpose.TRANSVERSE,
 )
 
+#: ``INVERSE_ORIENTATION[k]`` undoes transform ``k``: quarter turns swap, the rest undo themselves.
+INVERSE_ORIENTATION = (0, 3, 2, 1, 4, 5, 6, 7)
+
 #: Spans kept along each axis by the crop windows, as fractions (start, end) of the side.
 CROP_SPANS = ((0.0, 1.0), (0.0, 0.9), (0.1, 1.0), (0.0, 0.8), (0.1, 0.9), (0.2, 1.0))
 

@@ -32,6 +32,7 @@ import numpy as np
 import pandas as pd
 
 from curate.errors import LeakageError
+from curate.file_probe import EMPTY_SHA256
 from curate.grouping import is_placeholder_id
 from curate.manifest_table import standard_columns
 from curate.report import Finding, LeakReason, Report
@@ -288,7 +289,8 @@ def find_leaks(
 
     if "sha256" in t.columns:
         checks[LeakReason.EXACT_DUPLICATE.value] = True
-        found.append(_shared_key_leaks(t, t["sha256"], LeakReason.EXACT_DUPLICATE, order))
+        digest = t["sha256"].where(t["sha256"] != EMPTY_SHA256)  # empty files are not copies
+        found.append(_shared_key_leaks(t, digest, LeakReason.EXACT_DUPLICATE, order))
     else:
         checks[LeakReason.EXACT_DUPLICATE.value] = False
     checks[LeakReason.NEAR_DUPLICATE.value] = pairs is not None

@@ -46,6 +46,8 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
 from curate.hamming_index import hamming_distance, radius_pairs, radius_query
+from curate.file_probe import EMPTY_SHA256
+from curate.hashing import INVERSE_ORIENTATION
 
 __all__ = [
     "DEFAULT_RADIUS",
@@ -312,7 +314,7 @@ def _expand_to_images(hash_pairs: pd.DataFrame, members: pd.DataFrame) -> pd.Dat
 
 
 def _exact_pairs(catalog: pd.DataFrame) -> pd.DataFrame:
-    c = catalog.loc[catalog["sha256"].notna(), ["image_id", "sha256"]]
+    c = catalog.loc[catalog["sha256"].notna() & (catalog["sha256"] != EMPTY_SHA256), ["image_id", "sha256"]]
     codes = pd.factorize(c["sha256"])[0].astype(np.uint64)
     i, j, _ = radius_pairs(codes, 0)
     ids = c["image_id"].to_numpy()
@@ -386,6 +388,10 @@ def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DE
     x = pd.concat(parts, ignore_index=True)
     x["image_a"] = np.minimum(x["ia"], x["ib"])
     x["image_b"] = np.maximum(x["ia"], x["ib"])
+    # scoring found transform t turning image ia onto ib; the stored code turns b onto a, so
+    # where ia is image a the inverse transform is stored (quarter turns differ from theirs)
+    x["orientation"] = np.where(x["ia"] < x["ib"], np.asarray(INVERSE_ORIENTATION)[x["orientation"]],
+                                x["orientation"])
     meta = catalog.set_index("image_id")
     def col(name, ids):
         return meta[name].reindex(ids).to_numpy() if name in meta.columns else [None] * len(ids)

@@ -30,7 +30,7 @@ from typing import Iterable
 import numpy as np
 from PIL import Image, ImageDraw, ImageOps
 
-from curate.hashing import PIL_TRANSPOSE
+from curate.hashing import INVERSE_ORIENTATION, PIL_TRANSPOSE
 
 THUMBNAIL_DIR = "thumbnails"
 
@@ -51,10 +51,6 @@ ORIENTATION_NAMES = (
     "transposed",
     "transversed",
 )
-
-
-#: ``INVERSE_ORIENTATION[k]`` undoes transform ``k``: quarter turns swap, the rest undo themselves.
-INVERSE_ORIENTATION = (0, 3, 2, 1, 4, 5, 6, 7)
 
 
 def best_orientation(a: Image.Image, b: Image.Image, orientation: int | None) -> int:

@@ -1,5 +1,7 @@
 """Leakage groups: components of patient, lesion, digest, pair and decision links."""
 
+import hashlib
+
 import networkx as nx
 import numpy as np
 import pandas as pd
@@ -218,3 +220,11 @@ def test_large_catalog_stays_vectorised():
     cat = catalog([(i, "a", f"p{rng.integers(5000)}", None, f"{i:064x}") for i in range(n)])
     g = group_images(cat)
     assert g.n_groups == cat["patient_id"].nunique()
+
+
+def test_empty_files_do_not_join_their_patients():
+    # every zero-byte file has the SHA-256 of the empty message (FIPS 180-4); sharing it is not a copy
+    empty = hashlib.sha256(b"").hexdigest()
+    cat = catalog([(1, "a", "p1", None, empty), (2, "a", "p2", None, empty), (3, "a", "p3", None, "d3"),
+                   (4, "a", "p4", None, "d3")])
+    assert group_images(cat).n_groups == 3

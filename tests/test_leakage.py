@@ -402,3 +402,13 @@ def test_find_leaks_matches_a_plain_reference_and_ignores_row_order(rows, rnd):
     shuffled = t.sample(frac=1, random_state=rnd.randint(0, 2**31)).reset_index(drop=True)
     assert find_leaks(shuffled).to_frame().drop(columns="evidence").equals(f.drop(columns="evidence"))
     assert report.ok == (len(f) == 0)
+
+
+def test_empty_files_in_two_splits_are_not_exact_duplicates():
+    from curate.leakage import find_leaks
+
+    # the SHA-256 of zero bytes (FIPS 180-4) is shared by every empty file; it is not a copy
+    empty = hashlib.sha256(b"").hexdigest()
+    t = pd.DataFrame({"path": ["a.png", "b.png", "c.png", "d.png"], "split": ["train", "test"] * 2,
+                      "sha256": [empty, empty, "11", "11"]})
+    assert find_leaks(t).counts() == {"exact_duplicate": 1}

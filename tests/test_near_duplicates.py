@@ -110,6 +110,44 @@ def test_find_near_duplicates_on_a_folder(tmp_path):
     assert rot["orientation"].iloc[0] in (1, 3)  # rot90 one way or the other
 
 
+@pytest.mark.parametrize("t", range(1, 8))
+@pytest.mark.parametrize("turned_first", [False, True])
+def test_orientation_turns_image_b_onto_image_a(tmp_path, t, turned_first):
+    # reference: Pillow's Image.transpose makes the turned copy; the stored code, applied to
+    # image b with the same Pillow operations (curate.thumbnails.orient), must give image a back
+    from curate.hashing import PIL_TRANSPOSE
+    from curate.thumbnails import orient
+
+    original = _drawn(7, 160)
+    turned = original.transpose(PIL_TRANSPOSE[t])
+    files = [tmp_path / "original.png", tmp_path / "turned.png"]
+    if turned_first:
+        files.reverse()
+    original.save(tmp_path / "original.png")
+    turned.save(tmp_path / "turned.png")
+    pairs = find_near_duplicates([str(f) for f in files], workers=1, progress=False)
+    assert len(pairs) == 1
+    row = pairs.iloc[0]
+    image_a, image_b = (Image.open(row[c]).convert("RGB") for c in ("path_a", "path_b"))
+    back = orient(image_b, int(row["orientation"]))
+    assert back.size == image_a.size
+    assert np.array_equal(np.asarray(back), np.asarray(image_a))
+
+
+def test_empty_files_are_not_exact_duplicates_of_each_other():
+    import hashlib
+
+    # zero-byte files share the SHA-256 of the empty message (FIPS 180-4) but hold no image
+    empty = hashlib.sha256(b"").hexdigest()
+    cols = ["ahash", "dhash", "phash", "whash", "colorhash"] + [f"phash_t{t}" for t in range(8)]
+    hashes = pd.DataFrame(np.random.default_rng(0).integers(0, 2**63, (1, len(cols))).astype(np.uint64),
+                          columns=cols)
+    hashes.insert(0, "sha256", ["s1"])
+    catalog = pd.DataFrame({"image_id": [1, 2, 3, 4], "sha256": [empty, empty, "s1", "s1"]})
+    pairs = score_pairs(catalog, hashes)
+    assert pairs[["image_a", "image_b", "verdict"]].values.tolist() == [[3, 4, "exact"]]
+
+
 def test_find_near_duplicates_takes_a_list_or_a_frame(tmp_path):
     _write_set(tmp_path)
     files = sorted(str(p) for p in tmp_path.iterdir())
