@@ -2,7 +2,7 @@
 
 The file layer of the second stage: it picks the ``possible`` pairs with crop
 evidence (:func:`pairs_to_check`), decodes each file once, reduced and upright
-(:func:`curate.hash_files.decode_for_hashing`), and upgrades the pairs whose crop
+(:func:`curate.hash_files.picture_for_hashing`, as the hashes saw it), and upgrades the pairs whose crop
 is confirmed to ``near`` with ``crop = 1``. Used by :func:`curate.pair_store.find_pairs`,
 :func:`curate.pair_store.find_near_duplicates` and the leakage check, so all three
 judge crops the same way.
@@ -38,11 +38,11 @@ def pairs_to_check(pairs: pd.DataFrame, *, max_d_crop: int = MAX_CHECK_D_CROP) -
 
 
 def _decode(path: str):
-    from curate.hash_files import HashError, decode_for_hashing
+    from curate.hash_files import HashError, picture_for_hashing
 
     try:
         with open(path, "rb") as f:
-            return decode_for_hashing(f.read(), path=path)
+            return picture_for_hashing(f.read(), path=path)
     except (OSError, HashError):
         return None  # unreadable now: the pair stays as it was
 

@@ -5,7 +5,9 @@ decoded with Pillow. JPEGs are decoded at reduced size with ``Image.draft``
 (libjpeg's DCT scaling, 1/2 to 1/8), so a 4000 x 3000 photograph is never
 decoded at full size. The EXIF orientation is applied, the image is converted
 to RGB and shrunk by a whole box factor (:func:`curate.hashing.shrink_for_hashing`),
-and :func:`curate.hashing.hash_thumbnails` computes every hash from that one image.
+the dark surround of a dermoscope's round field of view is filled with the skin's
+median colour (:mod:`curate.field_of_view`), and
+:func:`curate.hashing.hash_thumbnails` computes every hash from that one image.
 
 Work runs over local processes (``concurrent.futures``) by default, or on a
 Dask cluster when a ``dask.distributed.Client`` (or a scheduler address) is
@@ -29,11 +31,12 @@ import pandas as pd
 from PIL import Image, UnidentifiedImageError
 
 from curate.errors import CurateError
+from curate.field_of_view import fill_surround
 from curate.hashing import DIHEDRAL_TRANSFORMS, THUMBNAIL_MIN_SIDE, hash_thumbnails, shrink_for_hashing
 from curate.report import Finding, IngestIssue, Reason, Report
 
 #: Bump when any hash changes for the same file; cached rows of other versions are recomputed.
-HASH_VERSION = 1
+HASH_VERSION = 2  # 2: the field-of-view surround is filled before hashing
 #: Size asked of ``Image.draft``: the decode keeps both sides at least this long.
 DRAFT_SIZE = THUMBNAIL_MIN_SIDE
 #: Most files per task sent to a worker (fewer when there are few files per worker).
@@ -134,6 +137,12 @@ def decode_for_hashing(
     return out.transpose(method) if method is not None else out
 
 
+def picture_for_hashing(data: bytes, *, path: str = "<bytes>") -> Image.Image:
+    """What every hash and the crop check see: :func:`decode_for_hashing`, then the dark
+    surround of a dermoscope's field of view filled (:func:`curate.field_of_view.fill_surround`)."""
+    return fill_surround(decode_for_hashing(data, path=path))
+
+
 def _read_and_decode(path: str, expected_sha256: str | None):
     """Read one file, check its digest, decode it reduced: ``(digest, thumbnail)``."""
     try:
@@ -151,7 +160,7 @@ def _read_and_decode(path: str, expected_sha256: str | None):
             path, HashIssue.CHANGED_SINCE_SCAN.value,
             f"content digest {digest[:12]}... differs from the catalog's {expected_sha256[:12]}...; re-scan",
         )
-    return digest, decode_for_hashing(data, path=path)
+    return digest, picture_for_hashing(data, path=path)
 
 
 def _ok_tuple(path: str, digest: str, thumb: Image.Image, h: dict) -> tuple:
