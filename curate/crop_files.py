@@ -15,7 +15,7 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
-__all__ = ["pairs_to_check", "upgrade_crop_pairs", "MAX_CHECK_D_CROP", "EVIDENCE_COLUMNS"]
+__all__ = ["pairs_to_check", "upgrade_crop_pairs", "check_chunk", "MAX_CHECK_D_CROP", "EVIDENCE_COLUMNS"]
 
 #: Only ``possible`` pairs whose best crop window is within this many bits (DCT hash) are checked.
 MAX_CHECK_D_CROP = 8
@@ -48,7 +48,7 @@ def _decode(path: str):
 
 
 def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int = MAX_CHECK_D_CROP,
-                       progress: bool = True) -> pd.DataFrame:
+                       workers: int | None = None, progress: bool = True) -> pd.DataFrame:
     """Upgrade ``possible`` pairs to ``near`` (``crop = 1``) where the crop check confirms a crop.
 
     Parameters
@@ -60,6 +60,8 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
         ``image_id`` -> file path of every image in ``pairs``.
     max_d_crop : int
         Which pairs are checked (see :func:`pairs_to_check`).
+    workers : int, optional
+        Processes running the checks (default: every core).
     progress : bool
         Show a progress bar (tqdm) over the checked pairs.
 
@@ -83,13 +85,11 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
     >>> pairs = pd.DataFrame({"image_a": [0], "image_b": [1], "verdict": ["possible"], "d_crop": [6],
     ...                       "crop": [0], "orientation": [0]})
     >>> out = upgrade_crop_pairs(pairs, {0: os.path.join(d, "a.png"), 1: os.path.join(d, "b.png")},
-    ...                          progress=False)
+    ...                          workers=1, progress=False)
     >>> out[["verdict", "crop", "crop_checked"]].values.tolist()
     [['near', 1, 1]]
     """
-    from tqdm.auto import tqdm
-
-    from curate.crop_check import check_crop
+    from curate.hash_files import _resolve_workers, _run_chunks
 
     out = pairs.copy()
     out["crop_checked"] = 0
@@ -99,23 +99,47 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
     out.attrs["crop_checked"] = int(todo.size)
     if not todo.size:
         return out
-    ids = np.union1d(out["image_a"].to_numpy()[todo], out["image_b"].to_numpy()[todo])
-    images = {}
+    # pairs sharing an image go to the same chunk where possible, so it is decoded once per chunk
+    a_ids, b_ids = out["image_a"].to_numpy()[todo], out["image_b"].to_numpy()[todo]
+    order = np.lexsort((b_ids, a_ids))
+    items = [(int(todo[k]), str(paths.get(a_ids[k], "")), str(paths.get(b_ids[k], ""))) for k in order]
     cols = {c: out.columns.get_loc(c) for c in ("verdict", "crop", *EVIDENCE_COLUMNS)}
-    for k in tqdm(todo, desc="crop check", unit="pair", disable=not progress, leave=False):
-        a, b = int(out["image_a"].iat[k]), int(out["image_b"].iat[k])
-        for i in (a, b):
-            if i not in images and i in ids:
-                images[i] = _decode(str(paths[i])) if i in paths else None
-        if images[a] is None or images[b] is None:
+    for results in _run_chunks(items, workers=_resolve_workers(workers), client=None, progress=progress,
+                               desc="crop check", func=check_chunk, unit="pair"):
+        for k, m in results:
+            if m is None:
+                continue  # a file is unreadable now: the pair stays as it was
+            confirmed, ncc, scale, orientation, agreeing = m
+            out.iloc[k, cols["crop_checked"]] = 1
+            out.iloc[k, cols["crop_ncc"]] = ncc
+            out.iloc[k, cols["crop_scale"]] = scale
+            out.iloc[k, cols["crop_orientation"]] = orientation
+            out.iloc[k, cols["crop_agreeing"]] = agreeing
+            if confirmed:
+                out.iloc[k, cols["verdict"]] = "near"
+                out.iloc[k, cols["crop"]] = 1
+    return out
+
+
+def check_chunk(items) -> list[tuple]:
+    """Run the crop check on ``(row, path_a, path_b)`` items; what a worker process runs.
+
+    Each file is decoded once per chunk. Returns ``(row, evidence)`` per item, where
+    evidence is ``(confirmed, ncc, scale, orientation, agreeing)``, or None when a
+    file cannot be read or decoded.
+    """
+    from curate.crop_check import check_crop
+
+    pictures: dict = {}
+    out = []
+    for k, path_a, path_b in items:
+        for p in (path_a, path_b):
+            if p not in pictures:
+                pictures[p] = _decode(p) if p else None
+        a, b = pictures[path_a], pictures[path_b]
+        if a is None or b is None:
+            out.append((k, None))
             continue
-        m = check_crop(images[a], images[b])
-        out.iloc[k, cols["crop_checked"]] = 1
-        out.iloc[k, cols["crop_ncc"]] = m.ncc
-        out.iloc[k, cols["crop_scale"]] = m.scale
-        out.iloc[k, cols["crop_orientation"]] = m.orientation
-        out.iloc[k, cols["crop_agreeing"]] = m.agreeing
-        if m.confirmed:
-            out.iloc[k, cols["verdict"]] = "near"
-            out.iloc[k, cols["crop"]] = 1
+        m = check_crop(a, b)
+        out.append((k, (bool(m.confirmed), m.ncc, m.scale, m.orientation, m.agreeing)))
     return out

@@ -233,28 +233,30 @@ def _resolve_workers(workers: int | None) -> int:
     return workers
 
 
-def _run_chunks(items, *, workers, client, progress, desc):
-    """Yield each chunk's result list as it finishes, locally or on a Dask cluster."""
+def _run_chunks(items, *, workers, client, progress, desc, func=None, unit="img"):
+    """Yield each chunk's result list (``func(chunk)``, default :func:`hash_chunk`) as it
+    finishes, locally or on a Dask cluster."""
     from tqdm.auto import tqdm
 
+    func = hash_chunk if func is None else func
     items = list(items)
     # at least ~4 chunks per worker so the last ones do not leave a core idle
     parallel = workers if client is None else max(1, sum(client.nthreads().values()))
     size = max(1, min(CHUNK_SIZE, -(-len(items) // (4 * parallel))))
     chunks = _chunks(items, size)
-    bar = tqdm(total=len(items), desc=desc, unit="img", disable=not progress)
+    bar = tqdm(total=len(items), desc=desc, unit=unit, disable=not progress)
     try:
         if client is not None:
             from dask.distributed import as_completed as dask_completed
 
-            futures = client.map(hash_chunk, chunks, pure=False)
+            futures = client.map(func, chunks, pure=False)
             for future in dask_completed(futures):
                 result = future.result()
                 bar.update(len(result))
                 yield result
         elif workers == 1 or len(chunks) <= 1:
             for chunk in chunks:
-                result = hash_chunk(chunk)
+                result = func(chunk)
                 bar.update(len(result))
                 yield result
         else:
@@ -263,7 +265,7 @@ def _run_chunks(items, *, workers, client, progress, desc):
             methods = multiprocessing.get_all_start_methods()
             ctx = multiprocessing.get_context("fork" if "fork" in methods else "spawn")
             with ProcessPoolExecutor(max_workers=min(workers, len(chunks)), mp_context=ctx) as pool:
-                futures = [pool.submit(hash_chunk, chunk) for chunk in chunks]
+                futures = [pool.submit(func, chunk) for chunk in chunks]
                 for future in as_completed(futures):
                     result = future.result()
                     bar.update(len(result))

@@ -207,7 +207,7 @@ def near_duplicate_pairs(
     scored = score_pairs(catalog, codes, radius=radius, workers=workers)
     # second stage: confirmed crops become near (the same check as curate.pair_store uses)
     scored = upgrade_crop_pairs(scored, dict(enumerate(absolute_of[p] for p in hashed["path"])),
-                                progress=progress)
+                                workers=workers, progress=progress)
     path = hashed["path"].to_numpy()
     by_path = scored.drop(columns=["image_a", "image_b", "conflict"]).assign(
         path_a=path[scored["image_a"].to_numpy()],

@@ -70,7 +70,8 @@ def find_pairs(ws, *, radius: int = DEFAULT_RADIUS, workers: int | None = None,
         hash_workspace(ws, workers=workers, progress=progress)
     hashes = load_hashes(ws)
     pairs = score_pairs(catalog, hashes, radius=radius, workers=workers)
-    pairs = upgrade_crop_pairs(pairs, dict(zip(catalog["image_id"], catalog["path"])), progress=progress)
+    pairs = upgrade_crop_pairs(pairs, dict(zip(catalog["image_id"], catalog["path"])), workers=workers,
+                               progress=progress)
     rows = [tuple(_sql_value(v) for v in rec) for rec in pairs[PAIR_COLUMNS].astype(object).itertuples(index=False)]
     with ws.transaction() as con:
         con.execute("DELETE FROM pairs")
@@ -195,7 +196,8 @@ def find_near_duplicates(paths_or_dataframe, *, radius: int = DEFAULT_RADIUS, wo
     catalog = table.assign(image_id=np.arange(len(table), dtype=np.int64),
                            sha256=by_path.reindex(table["path"]).to_numpy())
     pairs = score_pairs(catalog, hashes.drop(columns=["path"]), radius=radius, workers=workers)
-    pairs = upgrade_crop_pairs(pairs, dict(zip(catalog["image_id"], catalog["path"])), progress=progress)
+    pairs = upgrade_crop_pairs(pairs, dict(zip(catalog["image_id"], catalog["path"])), workers=workers,
+                               progress=progress)
     out = pairs_for_output(_with_paths(pairs, catalog))
     out.attrs["report"] = report
     return out

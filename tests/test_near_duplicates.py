@@ -323,3 +323,27 @@ def test_searching_only_difference_and_dct_hashes_loses_no_pair(seed, monkeypatc
     assert len(every) > 50
     pd.testing.assert_frame_equal(fast.sort_values(key).reset_index(drop=True),
                                   every.sort_values(key).reset_index(drop=True))
+
+
+def test_possible_pairs_are_capped_to_the_best_few_of_each_image():
+    catalog, hashes = _clustered_hash_frame(5, n_clusters=8, size=12)
+    every = score_pairs(catalog, hashes, radius=8, max_possible=None)
+    capped = score_pairs(catalog, hashes, radius=8, max_possible=2)
+    key = ["image_a", "image_b"]
+    confident = every[every["verdict"] != "possible"].sort_values(key).reset_index(drop=True)
+    pd.testing.assert_frame_equal(confident, capped[capped["verdict"] != "possible"].sort_values(key)
+                                  .reset_index(drop=True))
+    possible = every[every["verdict"] == "possible"]
+    kept = capped[capped["verdict"] == "possible"]
+    assert 0 < len(kept) < len(possible)
+    assert len(kept) <= 2 * len(catalog)
+    scores = {}  # image -> its possible scores, best first (plain loop, independent of the code)
+    for a, b, s in zip(possible["image_a"], possible["image_b"], possible["score"]):
+        scores.setdefault(a, []).append(s)
+        scores.setdefault(b, []).append(s)
+    second_best = {i: sorted(v, reverse=True)[:2][-1] for i, v in scores.items()}
+    for a, b, s in zip(kept["image_a"], kept["image_b"], kept["score"]):
+        assert s >= second_best[a] or s >= second_best[b]
+    for image, v in scores.items():
+        n_kept = ((kept["image_a"] == image) | (kept["image_b"] == image)).sum()
+        assert n_kept >= min(2, len(v))
