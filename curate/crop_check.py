@@ -13,7 +13,8 @@ How a pair is checked:
    covers a share ``f`` of the original's width (its height follows its own aspect
    ratio), ``f`` on a grid over [:data:`MIN_KEEP`, 1]; every offset is scored by
    normalised cross-correlation (NCC, computed by FFT with running sums for the
-   window statistics). All 16 (direction, orientation) choices are first tried at
+   window statistics; all the templates one step needs share one forward and one
+   inverse FFT call, and each (orientation, width) is scored once per pair). All 16 (direction, orientation) choices are first tried at
    :data:`PROBE_SCALES`; when none reaches :data:`PROBE_MIN_NCC` the pair is not a
    crop, otherwise the best :data:`KEEP_ORIENTATIONS` go on to the full scale grid. The best (direction, orientation, scale) of the coarse search
    is refined at the fine size on a finer grid around the coarse scale.
@@ -122,13 +123,16 @@ class CropMatch:
     agreeing: int
 
 
-def _grey(image: Image.Image, long_side: int) -> np.ndarray:
+def _luma(image: Image.Image) -> Image.Image:
     if not isinstance(image, Image.Image):
         raise TypeError(f"expected a PIL.Image.Image, got {type(image).__name__}")
-    g = image.convert("L")
-    f = long_side / max(g.size)
-    size = (max(8, round(g.width * f)), max(8, round(g.height * f)))
-    return np.asarray(g.resize(size, Image.Resampling.BILINEAR), dtype=np.float64)
+    return image.convert("L")
+
+
+def _grey(luma: Image.Image, long_side: int) -> np.ndarray:
+    f = long_side / max(luma.size)
+    size = (max(8, round(luma.width * f)), max(8, round(luma.height * f)))
+    return np.asarray(luma.resize(size, Image.Resampling.BILINEAR), dtype=np.float64)
 
 
 def _turn(a: np.ndarray, t: int) -> np.ndarray:
@@ -136,34 +140,87 @@ def _turn(a: np.ndarray, t: int) -> np.ndarray:
             a[::-1, ::-1].T)[t]
 
 
+def _running_sums(a: np.ndarray) -> np.ndarray:
+    """2-D cumulative sums with a leading row and column of zeros (sums over any window in 4 terms)."""
+    out = np.zeros((a.shape[0] + 1, a.shape[1] + 1))
+    np.cumsum(a, axis=0, out=out[1:, 1:])
+    np.cumsum(out[1:, 1:], axis=1, out=out[1:, 1:])
+    return out
+
+
+#: Largest spectrum (bytes) of one batch of templates in one FFT call: under glibc's default
+#: 128 KiB threshold above which each array is a fresh memory mapping, page-faulted on every call.
+FFT_BATCH_BYTES = 120_000
+
+
 class _Original:
     """An original image prepared for NCC of many templates: FFT and running sums, once."""
 
     def __init__(self, image: np.ndarray):
         self.image = image
-        self.shape = image.shape
-        H, W = image.shape
-        self.fft_shape = (sp_fft.next_fast_len(2 * H, real=True), sp_fft.next_fast_len(2 * W, real=True))
-        self.spectrum = sp_fft.rfft2(image, self.fft_shape)
-        self.c1 = np.pad(image, ((1, 0), (1, 0))).cumsum(0).cumsum(1)
-        self.c2 = np.pad(image * image, ((1, 0), (1, 0))).cumsum(0).cumsum(1)
+        self.shape = H, W = image.shape
+        # a circular correlation at least as long as the image leaves every 'valid' offset unwrapped
+        self.fft_shape = (sp_fft.next_fast_len(H, real=True), sp_fft.next_fast_len(W, real=True))
+        self.spectrum = sp_fft.rfft2(image, self.fft_shape, workers=1)
+        self.c1 = _running_sums(image)
+        self.c2 = _running_sums(image * image)
+        self._spread = {}  # (th, tw) -> square root of the window sums of squared deviations
+
+    def _window_spread(self, th: int, tw: int) -> np.ndarray:
+        if (th, tw) not in self._spread:
+            def window(c):
+                return c[th:, tw:] - c[:-th, tw:] - c[th:, :-tw] + c[:-th, :-tw]
+
+            var = window(self.c2) - window(self.c1) ** 2 / (th * tw)
+            self._spread[th, tw] = np.sqrt(np.maximum(var, 0.0))
+        return self._spread[th, tw]
+
+    def ncc_maps(self, templates) -> list[np.ndarray]:
+        """NCC of each template at every offset where it fits inside the image ('valid').
+
+        The templates may differ in shape. They go through the FFTs in batches of at
+        most :data:`FFT_BATCH_BYTES` of spectrum, one forward and one inverse call per
+        batch (larger arrays cost page faults on every call); templates of one shape
+        share the rest of the arithmetic.
+        """
+        by_shape = {}
+        for k, template in enumerate(templates):
+            by_shape.setdefault(template.shape, []).append(k)
+        order = [k for ks in by_shape.values() for k in ks]
+        per_batch = max(1, FFT_BATCH_BYTES // self.spectrum.nbytes)
+        maps = [None] * len(templates)
+        for start in range(0, len(order), per_batch):
+            batch = order[start:start + per_batch]
+            for k, m in zip(batch, self._ncc_batch([templates[k] for k in batch])):
+                maps[k] = m
+        return maps
+
+    def _ncc_batch(self, templates) -> list[np.ndarray]:
+        H, W = self.shape
+        by_shape = {}
+        for k, template in enumerate(templates):
+            by_shape.setdefault(template.shape, []).append(k)
+        stack = np.zeros((len(templates), *self.fft_shape))
+        norms = {}
+        for (th, tw), ks in by_shape.items():
+            t = np.stack([templates[k] for k in ks])
+            t = t - (t.sum(axis=(1, 2)) / (th * tw))[:, None, None]
+            norms[th, tw] = np.sqrt((t * t).sum(axis=(1, 2)))[:, None, None]
+            stack[ks, :th, :tw] = t[:, ::-1, ::-1]
+        product = self.spectrum * sp_fft.rfft2(stack, axes=(-2, -1), workers=1)
+        full = sp_fft.irfft2(product, self.fft_shape, axes=(-2, -1), overwrite_x=True, workers=1)
+        maps = [None] * len(templates)
+        for (th, tw), ks in by_shape.items():
+            n = th * tw
+            den = self._window_spread(th, tw) * norms[th, tw]
+            num = full[ks, th - 1:H, tw - 1:W]
+            for k, m in zip(ks, np.where(den > 1e-6 * n, num / np.maximum(den, 1e-12), 0.0)):
+                maps[k] = m
+        return maps
 
     def ncc_map(self, template: np.ndarray) -> np.ndarray:
         """NCC of the template at every offset where it fits inside the image ('valid')."""
-        H, W = self.shape
-        th, tw = template.shape
-        t = template - template.mean()
-        t_norm = np.sqrt((t * t).sum())
-        full = sp_fft.irfft2(self.spectrum * sp_fft.rfft2(t[::-1, ::-1], self.fft_shape), self.fft_shape)
-        num = full[th - 1:H, tw - 1:W]
-
-        def window(c):
-            return c[th:, tw:] - c[:-th, tw:] - c[th:, :-tw] + c[:-th, :-tw]
-
-        n = th * tw
-        var = window(self.c2) - window(self.c1) ** 2 / n
-        den = np.sqrt(np.maximum(var, 0.0)) * t_norm
-        return np.where(den > 1e-6 * n, num / np.maximum(den, 1e-12), 0.0)
+        return self.ncc_maps([template])[0]
 
 
 def _ncc(x: np.ndarray, y: np.ndarray) -> float:
@@ -178,31 +235,74 @@ def _detail(a: np.ndarray) -> np.ndarray:
     return a - gaussian_filter(a, DETAIL_SIGMA, mode="nearest")
 
 
-def _template(crop: np.ndarray, width: int, height_limit: int, shape_hw) -> np.ndarray | None:
-    """The crop resized to ``width`` pixels (aspect kept), or None when it does not fit."""
-    h, w = crop.shape
+def _template_height(crop_hw, width: int, shape_hw) -> int | None:
+    """Height of the crop resized to ``width`` pixels (aspect kept), or None when it does not fit."""
+    h, w = crop_hw
     th = round(width * h / w)
     if width < 6 or th < 6 or width > shape_hw[1] or th > shape_hw[0] or th < MIN_KEEP * shape_hw[0] - 1:
         return None
-    img = Image.fromarray(crop.astype(np.float32), mode="F").resize((width, th), Image.Resampling.BILINEAR)
-    return np.asarray(img, dtype=np.float64)
+    return th
 
 
-def _best_at(original: _Original, crop: np.ndarray, scales) -> tuple[float, float, int, int, int, int]:
-    """(ncc, scale, x, y, width, height) of the best placement over the scales."""
-    best = (-2.0, 0.0, 0, 0, 0, 0)
-    for f in scales:
-        if not MIN_KEEP - 0.03 <= f <= 1.0:
-            continue
-        tmpl = _template(crop, round(f * original.shape[1]), original.shape[0], original.shape)
-        if tmpl is None:
-            continue
-        m = original.ncc_map(tmpl)
-        k = int(np.argmax(m))
-        y, x = divmod(k, m.shape[1])
-        if m.flat[k] > best[0]:
-            best = (float(m.flat[k]), float(f), x, y, tmpl.shape[1], tmpl.shape[0])
-    return best
+class _Placements:
+    """One image as the crop and the other as the original: best placements, each scored once.
+
+    ``best`` answers what ``(orientation, scales)`` ask for; every template still missing
+    (an orientation of the crop resized to one width) is scored in one batch of NCC maps.
+    """
+
+    def __init__(self, crop: np.ndarray, original: np.ndarray):
+        self.original = _Original(original)
+        self._crop = Image.fromarray(crop.astype(np.float32), mode="F")
+        self._turned = {}  # orientation -> the crop turned, as a Pillow "F" image
+        self._found = {}  # (orientation, width) -> (ncc, x, y, width, height), None when it does not fit
+        self.templates = {}  # (orientation, width) -> template array
+
+    def _template(self, t: int, width: int) -> np.ndarray | None:
+        if t not in self._turned:
+            self._turned[t] = self._crop if PIL_TRANSPOSE[t] is None else self._crop.transpose(PIL_TRANSPOSE[t])
+        turned = self._turned[t]
+        th = _template_height((turned.height, turned.width), width, self.original.shape)
+        if th is None:
+            return None
+        img = turned.resize((width, th), Image.Resampling.BILINEAR)
+        return np.frombuffer(img.tobytes(), np.float32).reshape(th, width).astype(np.float64)
+
+    def _width(self, f) -> int:
+        return round(f * self.original.shape[1])
+
+    def best(self, requests) -> list[tuple[float, float, int, int, int, int]]:
+        """(ncc, scale, x, y, width, height) of the best placement over the scales, per request.
+
+        ``requests`` holds ``(orientation, scales)`` pairs. Scales outside
+        [MIN_KEEP - 0.03, 1] and templates that do not fit are skipped; the first scale
+        wins ties; ``(-2.0, 0.0, 0, 0, 0, 0)`` when nothing fits.
+        """
+        requests = [(t, [float(f) for f in scales if MIN_KEEP - 0.03 <= f <= 1.0]) for t, scales in requests]
+        keys = [(t, self._width(f)) for t, scales in requests for f in scales]
+        todo = []
+        for key in dict.fromkeys(keys):
+            if key not in self._found:
+                template = self._template(*key)
+                if template is None:
+                    self._found[key] = None
+                else:
+                    todo.append(key)
+                    self.templates[key] = template
+        for key, m in zip(todo, self.original.ncc_maps([self.templates[key] for key in todo])):
+            k = int(np.argmax(m))
+            y, x = divmod(k, m.shape[1])
+            th, tw = self.templates[key].shape
+            self._found[key] = (float(m.flat[k]), x, y, tw, th)
+        out = []
+        for t, scales in requests:
+            best = (-2.0, 0.0, 0, 0, 0, 0)
+            for f in scales:
+                found = self._found[t, self._width(f)]
+                if found is not None and found[0] > best[0]:
+                    best = (found[0], f, *found[1:])
+            out.append(best)
+        return out
 
 
 def _hash_distances(region: Image.Image, crop: Image.Image) -> dict:
@@ -242,46 +342,52 @@ def check_crop(image_a: Image.Image, image_b: Image.Image) -> CropMatch:
     >>> check_crop(big, Image.linear_gradient("L").resize((120, 120))).confirmed
     False
     """
-    coarse = [_grey(image_a, COARSE_SIDE), _grey(image_b, COARSE_SIDE)]
-    originals = [_Original(coarse[1]), _Original(coarse[0])]  # original when image a / b is the crop
+    luma = [_luma(image_a), _luma(image_b)]
+    coarse = [_grey(luma[0], COARSE_SIDE), _grey(luma[1], COARSE_SIDE)]
+    # placements of image a / b as the crop in the other
+    searches = [_Placements(coarse[0], coarse[1]), _Placements(coarse[1], coarse[0])]
     # which image is the crop, and how it is turned: all 16 at one middle scale, then the
     # best few over every scale
     trials = []
     for crop_i in (0, 1):
+        probes = searches[crop_i].best([(t, [f]) for t in range(8) for f in PROBE_SCALES])
         for t in range(8):
-            turned = _turn(coarse[crop_i], t)
-            ncc = max(_best_at(originals[crop_i], turned, [f])[0] for f in PROBE_SCALES)
+            ncc = max(p[0] for p in probes[t * len(PROBE_SCALES):(t + 1) * len(PROBE_SCALES)])
             trials.append((ncc, crop_i, t))
     if max(trials)[0] < PROBE_MIN_NCC:  # nothing lines up even roughly: not a crop
         _, crop_i, t = max(trials)
         return CropMatch(False, crop_i == 0, int(t), PROBE_SCALES[0], (0.0, 0.0, 0.0, 0.0), float(max(trials)[0]),
                          0.0, {}, 0)
+    kept = sorted(trials, reverse=True)[:KEEP_ORIENTATIONS]
+    for crop_i in (0, 1):  # score every kept orientation of one direction in one batch
+        searches[crop_i].best([(t, COARSE_SCALES) for _, i, t in kept if i == crop_i])
     best = None
-    for _, crop_i, t in sorted(trials, reverse=True)[:KEEP_ORIENTATIONS]:
-        ncc, f, *_ = _best_at(originals[crop_i], _turn(coarse[crop_i], t), COARSE_SCALES)
+    for _, crop_i, t in kept:
+        ncc, f, *_ = searches[crop_i].best([(t, COARSE_SCALES)])[0]
         if best is None or ncc > best[0]:
             best = (ncc, crop_i, t, f)
     _, crop_i, t, f0 = best
     # early reject: the coarse aligned region must already look like the crop (average hash)
-    _, _, x, y, w, h = _best_at(originals[crop_i], _turn(coarse[crop_i], t), [f0])
-    piece = Image.fromarray(np.clip(originals[crop_i].image[y:y + h, x:x + w], 0, 255).astype(np.uint8))
+    _, _, x, y, w, h = searches[crop_i].best([(t, [f0])])[0]
+    piece = Image.fromarray(np.clip(searches[crop_i].original.image[y:y + h, x:x + w], 0, 255).astype(np.uint8))
     rough = Image.fromarray(np.clip(_turn(coarse[crop_i], t), 0, 255).astype(np.uint8))
     if w == 0 or average_hash(piece) - average_hash(rough) > COARSE_MAX_AHASH:
         return CropMatch(False, crop_i == 0, int(t), float(f0), (0.0, 0.0, 0.0, 0.0), float(best[0]), 0.0, {}, 0)
-    fine = [_grey(image_a, WORK_SIDE), _grey(image_b, WORK_SIDE)]
-    original, crop = fine[1 - crop_i], _turn(fine[crop_i], t)
-    ncc, f, x, y, w, h = _best_at(_Original(original), crop, f0 + FINE_STEPS)
+    fine = [_grey(luma[0], WORK_SIDE), _grey(luma[1], WORK_SIDE)]
+    original = fine[1 - crop_i]
+    search = _Placements(fine[crop_i], original)
+    ncc, f, x, y, w, h = search.best([(t, f0 + FINE_STEPS)])[0]
     if w == 0:  # nothing fits at the fine size
         return CropMatch(False, crop_i == 0, t, f0, (0.0, 0.0, 0.0, 0.0), float(best[0]), 0.0, {}, 0)
     piece = original[y:y + h, x:x + w]
-    template = _template(crop, w, h, (h, w))
+    template = search.templates[t, w]
     detail_ncc = _ncc(_detail(piece), _detail(template))
     region = Image.fromarray(np.clip(piece, 0, 255).astype(np.uint8))
-    turned = (image_a, image_b)[crop_i].convert("L")
+    turned = luma[crop_i]
     if PIL_TRANSPOSE[t] is not None:
         turned = turned.transpose(PIL_TRANSPOSE[t])
     if max(turned.size) > 4 * WORK_SIDE:
-        turned = Image.fromarray(np.clip(crop, 0, 255).astype(np.uint8))
+        turned = Image.fromarray(np.clip(_turn(fine[crop_i], t), 0, 255).astype(np.uint8))
     distances = {k: int(v) for k, v in _hash_distances(region, turned).items()}
     agreeing = sum(distances[k] <= CONFIRM_THRESHOLDS[k] for k in CONFIRM_THRESHOLDS)
     H, W = original.shape

@@ -1,9 +1,11 @@
 """Run the crop check (:mod:`curate.crop_check`) on candidate pairs of image files.
 
-The file layer of the second stage: it picks the ``possible`` pairs with crop
-evidence (:func:`pairs_to_check`), decodes each file once, reduced and upright
-(:func:`curate.hash_files.picture_for_hashing`, as the hashes saw it), and upgrades the pairs whose crop
-is confirmed to ``near`` with ``crop = 1``. Used by :func:`curate.pair_store.find_pairs`,
+The file layer of the second stage: it picks the ``possible`` pairs with crop or
+orientation evidence (:func:`pairs_to_check`), decodes each file once, reduced and
+upright (:func:`curate.hash_files.decode_for_hashing`; the pixels as they are, the
+field-of-view surround included), and upgrades the pairs whose alignment is
+confirmed to ``near``: ``crop = 1`` for a crop, ``crop = 0`` for the whole picture
+turned or flipped. Used by :func:`curate.pair_store.find_pairs`,
 :func:`curate.pair_store.find_near_duplicates` and the leakage check, so all three
 judge crops the same way.
 """
@@ -17,39 +19,51 @@ import pandas as pd
 
 __all__ = ["pairs_to_check", "upgrade_crop_pairs", "check_chunk", "MAX_CHECK_D_CROP", "EVIDENCE_COLUMNS"]
 
-#: Only ``possible`` pairs whose best crop window is within this many bits (DCT hash) are checked.
+#: Only ``possible`` pairs whose best crop window, or whole picture under its best
+#: rotation/flip, is within this many bits (DCT hash) are checked.
 MAX_CHECK_D_CROP = 8
+#: A confirmed alignment covering at least this share of the original's width is the whole
+#: picture (turned or flipped), not a crop: the pair becomes ``near`` with ``crop = 0``.
+WHOLE_PICTURE_SCALE = 0.97
 #: Columns added to the pairs frame: evidence of the crop check (missing when not checked).
 EVIDENCE_COLUMNS = ["crop_checked", "crop_ncc", "crop_scale", "crop_orientation", "crop_agreeing"]
 
 
 def pairs_to_check(pairs: pd.DataFrame, *, max_d_crop: int = MAX_CHECK_D_CROP) -> np.ndarray:
-    """Boolean mask of the pairs the crop check looks at: ``possible`` with ``d_crop <= max_d_crop``.
+    """Boolean mask of the pairs the crop check looks at: ``possible`` with ``d_crop`` or
+    ``d_phash`` (DCT distance under the pair's orientation) at most ``max_d_crop``.
 
     Examples
     --------
     >>> import pandas as pd
-    >>> p = pd.DataFrame({"verdict": ["possible", "possible", "near"], "d_crop": [3, 20, 2]})
+    >>> p = pd.DataFrame({"verdict": ["possible", "possible", "near", "possible"],
+    ...                   "d_crop": [3, 20, 2, 20], "d_phash": [30, 30, 0, 6]})
     >>> pairs_to_check(p).tolist()
-    [True, False, False]
+    [True, False, False, True]
     """
-    d_crop = pd.to_numeric(pairs["d_crop"], errors="coerce").fillna(64).to_numpy()
-    return (pairs["verdict"].to_numpy() == "possible") & (d_crop <= max_d_crop)
+    def bits(column):
+        if column not in pairs.columns:
+            return np.full(len(pairs), 64.0)
+        return pd.to_numeric(pairs[column], errors="coerce").fillna(64).to_numpy()
+
+    close = (bits("d_crop") <= max_d_crop) | (bits("d_phash") <= max_d_crop)
+    return (pairs["verdict"].to_numpy() == "possible") & close
 
 
 def _decode(path: str):
-    from curate.hash_files import HashError, picture_for_hashing
+    from curate.hash_files import HashError, decode_for_hashing
 
     try:
         with open(path, "rb") as f:
-            return picture_for_hashing(f.read(), path=path)
+            return decode_for_hashing(f.read(), path=path)
     except (OSError, HashError):
         return None  # unreadable now: the pair stays as it was
 
 
 def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int = MAX_CHECK_D_CROP,
                        workers: int | None = None, progress: bool = True) -> pd.DataFrame:
-    """Upgrade ``possible`` pairs to ``near`` (``crop = 1``) where the crop check confirms a crop.
+    """Upgrade ``possible`` pairs to ``near`` where the crop check confirms a crop (``crop = 1``)
+    or the whole picture turned or flipped (``crop = 0``).
 
     Parameters
     ----------
@@ -117,7 +131,7 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
             out.iloc[k, cols["crop_agreeing"]] = agreeing
             if confirmed:
                 out.iloc[k, cols["verdict"]] = "near"
-                out.iloc[k, cols["crop"]] = 1
+                out.iloc[k, cols["crop"]] = int(scale < WHOLE_PICTURE_SCALE)
     return out
 
 

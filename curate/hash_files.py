@@ -5,9 +5,8 @@ decoded with Pillow. JPEGs are decoded at reduced size with ``Image.draft``
 (libjpeg's DCT scaling, 1/2 to 1/8), so a 4000 x 3000 photograph is never
 decoded at full size. The EXIF orientation is applied, the image is converted
 to RGB and shrunk by a whole box factor (:func:`curate.hashing.shrink_for_hashing`),
-the dark surround of a dermoscope's round field of view is filled with the skin's
-median colour (:mod:`curate.field_of_view`), and
-:func:`curate.hashing.hash_thumbnails` computes every hash from that one image.
+and :func:`hashes_of_pictures` computes every hash from that one image, with the dark
+surround of a dermoscope's round field of view filled (:mod:`curate.field_of_view`).
 
 Work runs over local processes (``concurrent.futures``) by default, or on a
 Dask cluster when a ``dask.distributed.Client`` (or a scheduler address) is
@@ -137,10 +136,12 @@ def decode_for_hashing(
     return out.transpose(method) if method is not None else out
 
 
-def picture_for_hashing(data: bytes, *, path: str = "<bytes>") -> Image.Image:
-    """What every hash and the crop check see: :func:`decode_for_hashing`, then the dark
-    surround of a dermoscope's field of view filled (:func:`curate.field_of_view.fill_surround`)."""
-    return fill_surround(decode_for_hashing(data, path=path))
+def hashes_of_pictures(pictures) -> list[dict]:
+    """Every stored hash of decoded pictures, computed on the pictures with the dark surround
+    of a dermoscope's field of view filled (:func:`curate.field_of_view.fill_surround`), so
+    different lesions seen through a dermoscope do not hash alike. Pictures without a
+    surround are hashed as they are."""
+    return hash_thumbnails([fill_surround(p) for p in pictures])
 
 
 def _read_and_decode(path: str, expected_sha256: str | None):
@@ -160,7 +161,7 @@ def _read_and_decode(path: str, expected_sha256: str | None):
             path, HashIssue.CHANGED_SINCE_SCAN.value,
             f"content digest {digest[:12]}... differs from the catalog's {expected_sha256[:12]}...; re-scan",
         )
-    return digest, picture_for_hashing(data, path=path)
+    return digest, decode_for_hashing(data, path=path)
 
 
 def _ok_tuple(path: str, digest: str, thumb: Image.Image, h: dict) -> tuple:
@@ -206,12 +207,12 @@ def hash_chunk(items: Sequence[tuple[str, str | None]]) -> list[tuple]:
             out[k] = _error_tuple(path, exc)
     with _one_blas_thread():
         try:
-            hashes = hash_thumbnails([d[3] for d in decoded])
+            hashes = hashes_of_pictures([d[3] for d in decoded])
         except Exception:  # noqa: BLE001 - hash one by one to find the file that breaks the batch
             hashes = None
         for j, (k, path, digest, thumb) in enumerate(decoded):
             try:
-                h = hashes[j] if hashes is not None else hash_thumbnails([thumb])[0]
+                h = hashes[j] if hashes is not None else hashes_of_pictures([thumb])[0]
                 out[k] = _ok_tuple(path, digest, thumb, h)
             except Exception as exc:  # noqa: BLE001
                 out[k] = _error_tuple(path, exc)

@@ -80,3 +80,22 @@ def test_fill_rejects_what_is_not_an_image():
         fill_surround(np.zeros((4, 4)))
     with pytest.raises(ValueError, match="2-D"):
         surround_mask(np.zeros((4, 4, 3)))
+
+
+def test_stored_hashes_are_imagehash_of_the_filled_picture():
+    # reference: imagehash's functions on the filled picture (with a surround) or on the picture
+    imagehash = pytest.importorskip("imagehash")
+    from curate.hash_files import hashes_of_pictures
+
+    def code(h):
+        return int(str(h), 16)
+
+    retina = Image.fromarray(skdata.retina()).reduce(8)  # round field of view on black
+    chelsea = Image.fromarray(skdata.chelsea())  # no surround
+    got_retina, got_chelsea = hashes_of_pictures([retina, chelsea])
+    filled = fill_surround(retina)
+    for name, want in (("ahash", imagehash.average_hash), ("dhash", imagehash.dhash),
+                       ("phash", imagehash.phash)):
+        assert got_retina[name] == code(want(filled)), name
+        assert got_chelsea[name] == code(want(chelsea)), name
+    assert got_retina["phash"] != code(imagehash.phash(retina))
