@@ -13,11 +13,13 @@ How a pair is checked:
    covers a share ``f`` of the original's width (its height follows its own aspect
    ratio), ``f`` on a grid over [:data:`MIN_KEEP`, 1]; every offset is scored by
    normalised cross-correlation (NCC, computed by FFT with running sums for the
-   window statistics; all the templates one step needs share one forward and one
-   inverse FFT call, and each (orientation, width) is scored once per pair). All 16 (direction, orientation) choices are first tried at
-   :data:`PROBE_SCALES`; when none reaches :data:`PROBE_MIN_NCC` the pair is not a
-   crop, otherwise the best :data:`KEEP_ORIENTATIONS` go on to the full scale grid. The best (direction, orientation, scale) of the coarse search
-   is refined at the fine size on a finer grid around the coarse scale.
+   window statistics; the templates of one step go through the FFTs together, and
+   each (orientation, width) is scored once per pair). All 16 (direction,
+   orientation) choices are first tried at :data:`PROBE_SCALES`; when none reaches
+   :data:`PROBE_MIN_NCC` the pair is not a crop, otherwise the best
+   :data:`KEEP_ORIENTATIONS` go on to the full scale grid. The best (direction,
+   orientation, scale) of the coarse search is refined at the fine size on a finer
+   grid around the coarse scale.
 3. **Confirmation.** The aligned region of the original and the turned template are
    hashed again with :func:`curate.hashing.average_hash`,
    :func:`~curate.hashing.difference_hash`, :func:`~curate.hashing.dct_hash` and
@@ -141,10 +143,11 @@ def _turn(a: np.ndarray, t: int) -> np.ndarray:
 
 
 def _running_sums(a: np.ndarray) -> np.ndarray:
-    """2-D cumulative sums with a leading row and column of zeros (sums over any window in 4 terms)."""
-    out = np.zeros((a.shape[0] + 1, a.shape[1] + 1))
-    np.cumsum(a, axis=0, out=out[1:, 1:])
-    np.cumsum(out[1:, 1:], axis=1, out=out[1:, 1:])
+    """Cumulative sums of the pixels and of their squares over both axes, each with a leading
+    row and column of zeros (the sum over any window in 4 terms): shape (2, H + 1, W + 1)."""
+    out = np.zeros((2, a.shape[0] + 1, a.shape[1] + 1))
+    np.cumsum(np.stack([a, a * a]), axis=1, out=out[:, 1:, 1:])
+    np.cumsum(out[:, 1:, 1:], axis=2, out=out[:, 1:, 1:])
     return out
 
 
@@ -154,25 +157,25 @@ FFT_BATCH_BYTES = 120_000
 
 
 class _Original:
-    """An original image prepared for NCC of many templates: FFT and running sums, once."""
+    """An original image prepared for NCC of many templates: FFT and running sums, once.
+
+    The FFTs are as long as the image (rounded up to a fast length): the correlation
+    wraps around, but not at the offsets where the template fits inside the image.
+    """
 
     def __init__(self, image: np.ndarray):
         self.image = image
         self.shape = H, W = image.shape
-        # a circular correlation at least as long as the image leaves every 'valid' offset unwrapped
         self.fft_shape = (sp_fft.next_fast_len(H, real=True), sp_fft.next_fast_len(W, real=True))
         self.spectrum = sp_fft.rfft2(image, self.fft_shape, workers=1)
-        self.c1 = _running_sums(image)
-        self.c2 = _running_sums(image * image)
+        self.sums = _running_sums(image)
         self._spread = {}  # (th, tw) -> square root of the window sums of squared deviations
 
     def _window_spread(self, th: int, tw: int) -> np.ndarray:
         if (th, tw) not in self._spread:
-            def window(c):
-                return c[th:, tw:] - c[:-th, tw:] - c[th:, :-tw] + c[:-th, :-tw]
-
-            var = window(self.c2) - window(self.c1) ** 2 / (th * tw)
-            self._spread[th, tw] = np.sqrt(np.maximum(var, 0.0))
+            c = self.sums
+            s1, s2 = c[:, th:, tw:] - c[:, :-th, tw:] - c[:, th:, :-tw] + c[:, :-th, :-tw]
+            self._spread[th, tw] = np.sqrt(np.maximum(s2 - s1 ** 2 / (th * tw), 0.0))
         return self._spread[th, tw]
 
     def ncc_maps(self, templates) -> list[np.ndarray]:
@@ -203,7 +206,7 @@ class _Original:
         stack = np.zeros((len(templates), *self.fft_shape))
         norms = {}
         for (th, tw), ks in by_shape.items():
-            t = np.stack([templates[k] for k in ks])
+            t = np.stack([templates[k] for k in ks]) if len(ks) > 1 else templates[ks[0]][None]
             t = t - (t.sum(axis=(1, 2)) / (th * tw))[:, None, None]
             norms[th, tw] = np.sqrt((t * t).sum(axis=(1, 2)))[:, None, None]
             stack[ks, :th, :tw] = t[:, ::-1, ::-1]
@@ -329,6 +332,12 @@ def check_crop(image_a: Image.Image, image_b: Image.Image) -> CropMatch:
     -------
     CropMatch
         The best alignment and whether it is confirmed.
+
+    Notes
+    -----
+    Two alignments can score the same NCC in exact arithmetic: two pictures of one size
+    compared whole, one direction against the other. Float rounding then picks one, and
+    ``crop_is_a`` and ``orientation`` describe the same alignment from either side.
 
     Examples
     --------

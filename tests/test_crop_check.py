@@ -8,7 +8,7 @@ import pandas as pd
 import pytest
 from PIL import Image, ImageDraw, ImageFilter
 
-from curate.crop_check import check_crop
+from curate.crop_check import COARSE_SCALES, MIN_KEEP, _Original, _Placements, _turn, check_crop
 from curate.crop_files import pairs_to_check, upgrade_crop_pairs
 from curate.hashing import PIL_TRANSPOSE
 
@@ -136,6 +136,64 @@ def test_different_sample_photographs_are_not_confirmed():
     for (na, a), (nb, b) in zip(photos, photos[1:] + photos[:1]):
         assert not check_crop(a, b).confirmed, (na, nb)
         assert not check_crop(a, _random_crop(b, np.random.default_rng(0))).confirmed, (na, nb)
+
+
+# --- the batched NCC search against scikit-image ----------------------------------------------
+
+
+def _match_template():
+    # Reference: scikit-image's skimage.feature.match_template (0.26): the zero-mean normalised
+    # cross-correlation of the template at every offset where it fits inside the image, the
+    # same as the Pearson correlation of the template with each window (checked to 1e-14).
+    return pytest.importorskip("skimage.feature").match_template
+
+
+@pytest.mark.parametrize("shape", [(36, 48), (48, 33), (128, 96)])
+def test_batched_ncc_maps_match_scikit_image_match_template(shape):
+    match_template = _match_template()
+    rng = np.random.default_rng(sum(shape))
+    H, W = shape
+    image = rng.random(shape) * 255
+    # shapes repeat (they share arithmetic) and differ (they share only the FFTs); at the
+    # small sizes 12 templates span more than one FFT batch
+    shapes = [(H, W), (H - 3, W - 5), (H - 3, W - 5), (int(0.8 * H), int(0.75 * W)), (6, 6), (H, 7), (7, W),
+              (H - 3, W - 5), (int(0.7 * H), W - 1), (H - 1, int(0.7 * W)), (6, 6), (H - 2, W - 2)]
+    templates = [rng.random(s) * 255 for s in shapes]
+    maps = _Original(image).ncc_maps(templates)
+    assert len(maps) == len(templates)
+    for template, m in zip(templates, maps):
+        np.testing.assert_allclose(m, match_template(image, template), rtol=0, atol=1e-9)
+    # one template per call gives the same maps as the batch
+    for template, m in zip(templates[:4], maps[:4]):
+        np.testing.assert_allclose(_Original(image).ncc_map(template), m, rtol=0, atol=1e-12)
+
+
+def test_best_placements_match_a_loop_over_scales_with_match_template():
+    match_template = _match_template()
+    rng = np.random.default_rng(11)
+    original = rng.random((36, 48)) * 255
+    crop = rng.random((30, 42)) * 255
+    search = _Placements(crop, original)
+    requests = [(t, COARSE_SCALES) for t in (0, 1, 3, 4, 6)] + [(0, [0.85]), (0, [0.5, 0.9, 1.2])]
+    got = search.best(requests)
+    for (t, scales), found in zip(requests, got):
+        best = (-2.0, 0.0, 0, 0, 0, 0)  # the first largest NCC over the scales, as the module documents
+        for f in scales:
+            turned = Image.fromarray(_turn(crop, t).astype(np.float32))
+            width = round(f * 48)
+            height = round(width * turned.height / turned.width)
+            if not (MIN_KEEP - 0.03 <= f <= 1.0 and 6 <= width <= 48 and 6 <= height <= 36
+                    and height >= MIN_KEEP * 36 - 1):
+                continue  # the template does not fit in the original
+            template = np.asarray(turned.resize((width, height), Image.Resampling.BILINEAR), dtype=np.float64)
+            m = match_template(original, template)
+            y, x = np.unravel_index(np.argmax(m), m.shape)
+            if m[y, x] > best[0]:
+                best = (float(m[y, x]), float(f), int(x), int(y), width, height)
+        assert found[1:] == best[1:], (t, scales)
+        assert found[0] == pytest.approx(best[0], abs=1e-9)
+    # both cases came up: turned a quarter, the crop is too tall to fit at any scale
+    assert {found[0] == -2.0 for found in got} == {True, False}
 
 
 # --- the file layer -------------------------------------------------------------------------
