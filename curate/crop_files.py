@@ -17,6 +17,8 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
+from curate.hashing import INVERSE_ORIENTATION
+
 __all__ = ["pairs_to_check", "upgrade_crop_pairs", "check_chunk", "MAX_CHECK_D_CROP", "EVIDENCE_COLUMNS"]
 
 #: Only ``possible`` pairs whose best crop window, or whole picture under its best
@@ -139,7 +141,8 @@ def check_chunk(items) -> list[tuple]:
     """Run the crop check on ``(row, path_a, path_b)`` items; what a worker process runs.
 
     Each file is decoded once per chunk. Returns ``(row, evidence)`` per item, where
-    evidence is ``(confirmed, ncc, scale, orientation, agreeing)``, or None when a
+    evidence is ``(confirmed, ncc, scale, orientation, agreeing)`` (orientation: the
+    code turning the picture at ``path_b`` onto the one at ``path_a``), or None when a
     file cannot be read or decoded.
     """
     from curate.crop_check import check_crop
@@ -155,5 +158,8 @@ def check_chunk(items) -> list[tuple]:
             out.append((k, None))
             continue
         m = check_crop(a, b)
-        out.append((k, (bool(m.confirmed), m.ncc, m.scale, m.orientation, m.agreeing)))
+        # the check turns whichever picture is the crop; stored, the code turns b onto a
+        # (as the pairs' orientation), so a tie between the two directions gives one answer
+        turn = INVERSE_ORIENTATION[m.orientation] if m.crop_is_a else m.orientation
+        out.append((k, (bool(m.confirmed), m.ncc, m.scale, int(turn), m.agreeing)))
     return out

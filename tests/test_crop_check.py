@@ -241,3 +241,25 @@ def test_find_near_duplicates_calls_a_crop_near(tmp_path):
     assert got.get(("orig.png", "orig_crop.png"), ("missed", 0))[0] == "near", pairs
     assert got[("orig.png", "orig_crop.png")][1] == 1
     assert all(v != "near" for n, (v, _) in got.items() if n != ("orig.png", "orig_crop.png"))
+
+
+@pytest.mark.parametrize("t", [1, 3, 4, 6])
+@pytest.mark.parametrize("turned_first", [False, True])
+def test_stored_check_orientation_turns_image_b_onto_image_a(tmp_path, t, turned_first):
+    # reference: Pillow's transpose makes the turned copy and, applied with the stored code to
+    # the picture at path_b (curate.thumbnails.orient), must give the picture at path_a back
+    from curate.thumbnails import orient
+
+    original = _lesion(_skin(3, (160, 160)), 3)
+    turned = original.transpose(PIL_TRANSPOSE[t])
+    pictures = [turned, original] if turned_first else [original, turned]
+    paths = {}
+    for k, picture in enumerate(pictures):
+        paths[k] = str(tmp_path / f"{k}.png")
+        picture.save(paths[k])
+    pairs = pd.DataFrame({"image_a": [0], "image_b": [1], "verdict": ["possible"], "d_crop": [6],
+                          "crop": [0], "orientation": [0]})
+    out = upgrade_crop_pairs(pairs, paths, workers=1, progress=False)
+    assert out["crop_checked"].tolist() == [1]
+    back = orient(pictures[1], int(out["crop_orientation"].iloc[0]))
+    assert np.array_equal(np.asarray(back), np.asarray(pictures[0]))
