@@ -15,6 +15,7 @@ import os
 from pathlib import Path
 from typing import Iterable, Mapping
 
+import numpy as np
 import pandas as pd
 
 from curate.leakage import LeakageReport, find_leaks
@@ -205,9 +206,15 @@ def near_duplicate_pairs(
     catalog = pd.DataFrame({"image_id": range(len(hashed)), "sha256": hashed["sha256"]})
     codes = hashes.drop(columns=["path"]).drop_duplicates("sha256")
     scored = score_pairs(catalog, codes, radius=radius, workers=workers)
-    # second stage: confirmed crops become near (the same check as curate.pair_store uses)
-    scored = upgrade_crop_pairs(scored, dict(enumerate(absolute_of[p] for p in hashed["path"])),
-                                workers=workers, progress=progress)
+    # second stage: confirmed crops become near (the same check as curate.pair_store uses), on
+    # the pairs that could leak: two images in different splits (a pair inside one split is no leak)
+    cross = np.ones(len(scored), bool)
+    if "split" in hashed.columns:
+        split = hashed["split"].astype(str).to_numpy()
+        cross = split[scored["image_a"].to_numpy()] != split[scored["image_b"].to_numpy()]
+    checked = upgrade_crop_pairs(scored[cross], dict(enumerate(absolute_of[p] for p in hashed["path"])),
+                                 workers=workers, progress=progress)
+    scored = pd.concat([checked, scored[~cross]], ignore_index=True) if (~cross).any() else checked
     path = hashed["path"].to_numpy()
     by_path = scored.drop(columns=["image_a", "image_b", "conflict"]).assign(
         path_a=path[scored["image_a"].to_numpy()],

@@ -412,3 +412,26 @@ def test_empty_files_in_two_splits_are_not_exact_duplicates():
     t = pd.DataFrame({"path": ["a.png", "b.png", "c.png", "d.png"], "split": ["train", "test"] * 2,
                       "sha256": [empty, empty, "11", "11"]})
     assert find_leaks(t).counts() == {"exact_duplicate": 1}
+
+
+def test_crop_check_runs_only_on_pairs_that_could_leak(tmp_path):
+    import numpy as np
+    from PIL import Image
+
+    from curate.leakage_check import near_duplicate_pairs
+
+    skdata = pytest.importorskip("skimage.data")
+    # scikit-image's sample photograph and two crops of it made with Pillow
+    photo = Image.fromarray(skdata.astronaut()).reduce(2)
+    pictures = {"orig.png": photo, "crop_train.jpg": photo.crop((30, 10, 250, 226)),
+                "crop_test.png": photo.crop((30, 10, 250, 226))}
+    for name, picture in pictures.items():
+        picture.save(tmp_path / name)
+    table = pd.DataFrame({"path": list(pictures), "split": ["train", "train", "test"]})
+    table["sha256"] = [hashlib.sha256((tmp_path / p).read_bytes()).hexdigest() for p in table["path"]]
+    pairs, review, _ = near_duplicate_pairs(table, tmp_path, cache=False, workers=1, progress=False)
+    every = pd.concat([pairs, review], ignore_index=True)
+    checked = {frozenset((a, b)): c for a, b, c in zip(every["path_a"], every["path_b"], every["crop_checked"])}
+    assert checked[frozenset(("orig.png", "crop_test.png"))] == 1
+    same_split = frozenset(("orig.png", "crop_train.jpg"))
+    assert checked[same_split] != 1  # a candidate, but inside one split: not checked
