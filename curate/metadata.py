@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import codecs
 import csv
+import functools
 import io
 import os
 import re
@@ -345,6 +346,7 @@ _DATE_FORMATS = ("%Y-%m-%d", "%Y/%m/%d", "%Y.%m.%d", "%Y%m%d")
 _DATE_PREFIX = re.compile(r"^(\d{4}[-/.]\d{1,2}[-/.]\d{1,2}|\d{8})(?:[T ]\d{1,2}:\d{2}(?::\d{2}(?:\.\d+)?)?)?$")
 
 
+@functools.lru_cache(maxsize=1 << 16)  # capture dates repeat: one parse per distinct text
 def parse_date(text: str) -> str | None:
     """An ISO date (``YYYY-MM-DD``) from a year-first date or date-time; None if not one.
 
