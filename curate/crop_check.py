@@ -58,11 +58,13 @@ COARSE_SIDE = 48
 MIN_KEEP = 0.70
 #: Scales tried in the coarse search (share of the original's width).
 COARSE_SCALES = np.linspace(MIN_KEEP, 1.0, 7)
-#: Scales tried for every (direction, orientation) before the full scale search.
-PROBE_SCALES = (0.85,)
-#: Smallest best NCC of those probes for the search to go on. Measured on a 5,000-image demo:
-#: confirmed crops probed at 0.77 or more, half of the unrelated candidate pairs under 0.62;
-#: a crop of scikit-image's "coins" photograph, textured and cut at another scale, at 0.67.
+#: Scales tried for every (direction, orientation) before the full scale search: a middle
+#: crop, and the whole picture (a turned dermoscopic copy probed at 0.85 alone scored 0.55:
+#: its round field of view does not line up at another scale).
+PROBE_SCALES = (0.85, 1.0)
+#: Smallest best NCC of those probes for the search to go on. Measured on a 5,000-image demo
+#: (probing at 0.85): confirmed crops probed at 0.77 or more, half of the unrelated candidate
+#: pairs under 0.62; a crop of scikit-image's "coins" photograph, cut at another scale, at 0.67.
 PROBE_MIN_NCC = 0.60
 #: How many (direction, orientation) choices go on to the full coarse scale search.
 KEEP_ORIENTATIONS = 3

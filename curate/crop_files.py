@@ -12,6 +12,7 @@ judge crops the same way.
 
 from __future__ import annotations
 
+import dataclasses
 from typing import Mapping
 
 import numpy as np
@@ -146,6 +147,7 @@ def check_chunk(items) -> list[tuple]:
     file cannot be read or decoded.
     """
     from curate.crop_check import check_crop
+    from curate.field_of_view import fill_surround
 
     pictures: dict = {}
     out = []
@@ -158,6 +160,13 @@ def check_chunk(items) -> list[tuple]:
             out.append((k, None))
             continue
         m = check_crop(a, b)
+        if m.confirmed and m.scale >= WHOLE_PICTURE_SCALE:
+            # a whole dermoscopic picture lines up with another through their shared round
+            # field of view; with the surrounds filled the skin and lesion must line up too
+            filled_a, filled_b = fill_surround(a), fill_surround(b)
+            if filled_a is not a or filled_b is not b:
+                if not check_crop(filled_a, filled_b).confirmed:
+                    m = dataclasses.replace(m, confirmed=False)
         # the check turns whichever picture is the crop; stored, the code turns b onto a
         # (as the pairs' orientation), so a tie between the two directions gives one answer
         turn = INVERSE_ORIENTATION[m.orientation] if m.crop_is_a else m.orientation

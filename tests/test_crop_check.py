@@ -263,3 +263,39 @@ def test_stored_check_orientation_turns_image_b_onto_image_a(tmp_path, t, turned
     assert out["crop_checked"].tolist() == [1]
     back = orient(pictures[1], int(out["crop_orientation"].iloc[0]))
     assert np.array_equal(np.asarray(back), np.asarray(pictures[0]))
+
+
+def _dermoscopic(seed):
+    """A lesion seen through a round field of view on a black surround."""
+    picture = _lesion(_skin(seed, (160, 160)), seed)
+    field = Image.new("L", picture.size, 0)
+    ImageDraw.Draw(field).ellipse((3, 3, 156, 156), fill=255)
+    return Image.composite(picture, Image.new("RGB", picture.size, (6, 5, 5)), field)
+
+
+def test_turned_dermoscopic_copy_is_confirmed_as_a_whole_picture(tmp_path):
+    from curate.crop_files import check_chunk
+
+    original = _dermoscopic(5)
+    original.save(tmp_path / "a.png")
+    original.transpose(PIL_TRANSPOSE[5]).save(tmp_path / "b.png")
+    [(row, (confirmed, _, scale, _, _))] = check_chunk([(0, str(tmp_path / "a.png"), str(tmp_path / "b.png"))])
+    assert confirmed and scale >= 0.97
+
+
+def test_whole_picture_match_through_the_surround_alone_is_not_confirmed(tmp_path, monkeypatch):
+    # the rule: a whole-picture match of pictures with a field-of-view surround must hold again
+    # with the surrounds filled; a stand-in check confirms only pictures that still have theirs
+    import curate.crop_check as cc
+    from curate.crop_check import CropMatch
+    from curate.crop_files import check_chunk
+
+    def stand_in(a, b):
+        dark_corner = min(a.convert("L").getpixel((0, 0)), b.convert("L").getpixel((0, 0))) < 20
+        return CropMatch(dark_corner, False, 0, 1.0, (0.0, 0.0, 1.0, 1.0), 0.99, 0.9, {}, 4)
+
+    monkeypatch.setattr(cc, "check_crop", stand_in)
+    _dermoscopic(1).save(tmp_path / "a.png")
+    _dermoscopic(2).save(tmp_path / "b.png")
+    [(_, evidence)] = check_chunk([(0, str(tmp_path / "a.png"), str(tmp_path / "b.png"))])
+    assert evidence[0] is False  # confirmed only through the surround: refused
