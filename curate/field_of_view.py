@@ -4,17 +4,18 @@ A dermoscopic photograph shows the skin through a round window; outside it the
 picture is near black. That surround is the same in every dermoscopic image, and
 it dominates the low frequencies that perceptual hashes keep: two different
 lesions seen through the same dermoscope hash within a few bits of each other.
-Before hashing (and before the crop check) the surround is therefore painted
-over with the median colour of the skin inside, so the hashes describe the skin
-and the lesion. Masking the dark field-of-view surround is common practice in
+Before hashing the surround is therefore painted over with the median colour of
+the skin inside, so the hashes describe the skin and the lesion (the crop check
+looks at the pictures as they are, and again filled when two whole dermoscopic
+pictures line up). Masking the dark field-of-view surround is common practice in
 dermoscopy image analysis (no single source).
 
 Pure: takes and returns in-memory images; the file layer is :mod:`curate.hash_files`.
 
 The rule (constants below): a pixel is *dark* when its grey level is under
 :data:`DARK_SHARE` of the median grey level of the picture's brighter pixels
-(taken over every 4th pixel of every 4th row; and under at least :data:`DARK_FLOOR`). The surround is every dark region that
-touches the picture's edge, taken only when it covers at least :data:`MIN_AREA`
+(taken over every 4th pixel of every 4th row; and under at least
+:data:`DARK_FLOOR`). The surround is every dark region that touches the picture's edge, taken only when it covers at least :data:`MIN_AREA`
 of the picture, at most :data:`MAX_AREA`, and reaches at least
 :data:`MIN_CORNERS` of its four corners: a dark lesion or shadow at one edge is
 left alone, and so is a photograph without a surround. The surround is grown by
@@ -76,9 +77,8 @@ def surround_mask(grey: np.ndarray) -> np.ndarray:
     if n == 0:
         return np.zeros(g.shape, bool)
     edge = np.unique(np.concatenate([labels[0], labels[-1], labels[:, 0], labels[:, -1]]))
-    mask = np.isin(labels, edge[edge > 0])
-    corners = int(mask[0, 0]) + int(mask[0, -1]) + int(mask[-1, 0]) + int(mask[-1, -1])
-    if corners < MIN_CORNERS or not MIN_AREA <= mask.mean() <= MAX_AREA:
+    mask = np.isin(labels, edge[edge > 0])  # holds every dark corner: corners lie on the edge
+    if not MIN_AREA <= mask.mean() <= MAX_AREA:
         return np.zeros(g.shape, bool)
     grow = max(1, round(GROW * min(g.shape)))
     mask = ndimage.binary_dilation(mask, iterations=grow)
