@@ -106,7 +106,7 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
     >>> out[["verdict", "crop", "crop_checked"]].values.tolist()
     [['near', 1, 1]]
     """
-    from curate.hash_files import _resolve_workers, _run_chunks
+    from curate.chunked_work import resolve_workers, run_chunks
 
     out = pairs.copy()
     out["crop_checked"] = 0
@@ -121,8 +121,8 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
     order = np.lexsort((b_ids, a_ids))
     items = [(int(todo[k]), str(paths.get(a_ids[k], "")), str(paths.get(b_ids[k], ""))) for k in order]
     cols = {c: out.columns.get_loc(c) for c in ("verdict", "crop", *EVIDENCE_COLUMNS)}
-    for results in _run_chunks(items, workers=_resolve_workers(workers), client=None, progress=progress,
-                               desc="crop check", func=check_chunk, unit="pair"):
+    for results in run_chunks(check_chunk, items, workers=resolve_workers(workers), progress=progress,
+                              desc="crop check", unit="pair"):
         for k, m in results:
             if m is None:
                 continue  # a file is unreadable now: the pair stays as it was

@@ -21,7 +21,6 @@ import hashlib
 import io
 import os
 import warnings
-from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from typing import Iterable, Sequence
 
@@ -29,6 +28,7 @@ import numpy as np
 import pandas as pd
 from PIL import Image, UnidentifiedImageError
 
+from curate.chunked_work import resolve_workers, run_chunks
 from curate.errors import CurateError
 from curate.field_of_view import fill_surround
 from curate.hashing import DIHEDRAL_TRANSFORMS, THUMBNAIL_MIN_SIDE, hash_thumbnails, shrink_for_hashing
@@ -222,59 +222,6 @@ def hash_chunk(items: Sequence[tuple[str, str | None]]) -> list[tuple]:
 # --- running many files -----------------------------------------------------------------
 
 
-def _chunks(items: list, size: int) -> list[list]:
-    return [items[i : i + size] for i in range(0, len(items), size)]
-
-
-def _resolve_workers(workers: int | None) -> int:
-    if workers is None:
-        return os.cpu_count() or 1
-    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
-        raise ValueError(f"workers must be a positive integer or None, got {workers!r}")
-    return workers
-
-
-def _run_chunks(items, *, workers, client, progress, desc, func=None, unit="img"):
-    """Yield each chunk's result list (``func(chunk)``, default :func:`hash_chunk`) as it
-    finishes, locally or on a Dask cluster."""
-    from tqdm.auto import tqdm
-
-    func = hash_chunk if func is None else func
-    items = list(items)
-    # at least ~4 chunks per worker so the last ones do not leave a core idle
-    parallel = workers if client is None else max(1, sum(client.nthreads().values()))
-    size = max(1, min(CHUNK_SIZE, -(-len(items) // (4 * parallel))))
-    chunks = _chunks(items, size)
-    bar = tqdm(total=len(items), desc=desc, unit=unit, disable=not progress)
-    try:
-        if client is not None:
-            from dask.distributed import as_completed as dask_completed
-
-            futures = client.map(func, chunks, pure=False)
-            for future in dask_completed(futures):
-                result = future.result()
-                bar.update(len(result))
-                yield result
-        elif workers == 1 or len(chunks) <= 1:
-            for chunk in chunks:
-                result = func(chunk)
-                bar.update(len(result))
-                yield result
-        else:
-            import multiprocessing
-
-            methods = multiprocessing.get_all_start_methods()
-            ctx = multiprocessing.get_context("fork" if "fork" in methods else "spawn")
-            with ProcessPoolExecutor(max_workers=min(workers, len(chunks)), mp_context=ctx) as pool:
-                futures = [pool.submit(func, chunk) for chunk in chunks]
-                for future in as_completed(futures):
-                    result = future.result()
-                    bar.update(len(result))
-                    yield result
-    finally:
-        bar.close()
-
-
 def _open_client(client, scheduler: str | None):
     if client is not None and scheduler is not None:
         raise ValueError("pass either client or scheduler, not both")
@@ -363,7 +310,7 @@ def hash_files(
     (1, {'zero_byte': 1})
     """
     unique = list(dict.fromkeys(os.path.abspath(os.fspath(p)) for p in paths))
-    workers = _resolve_workers(workers)
+    workers = resolve_workers(workers)
     report = Report([])
     rows: list[tuple] = []
     cached_rows: list[tuple] = []
@@ -385,7 +332,8 @@ def hash_files(
                 todo.append((p, digest))
     client, owned = _open_client(client, scheduler)
     try:
-        for result in _run_chunks(todo, workers=workers, client=client, progress=progress, desc="hashing"):
+        for result in run_chunks(hash_chunk, todo, workers=workers, client=client, progress=progress,
+                                 desc="hashing", chunk_size=CHUNK_SIZE):
             ok = [r for r in result if r[0] == "ok"]
             report.extend(_finding(*r[1:]) for r in result if r[0] == "error")
             if workspace is not None and ok:
@@ -529,7 +477,7 @@ def hash_workspace(
     """
     from curate.store import record_problems
 
-    workers = _resolve_workers(workers)
+    workers = resolve_workers(workers)
     con = ws.connect()
     try:
         todo = con.execute(
@@ -551,7 +499,8 @@ def hash_workspace(
     client, owned = _open_client(client, scheduler)
     try:
         items = [(path, digest) for digest, path in todo]
-        for result in _run_chunks(items, workers=workers, client=client, progress=progress, desc="hashing"):
+        for result in run_chunks(hash_chunk, items, workers=workers, client=client, progress=progress,
+                                 desc="hashing", chunk_size=CHUNK_SIZE):
             ok = [r for r in result if r[0] == "ok"]
             bad = [_finding(*r[1:]) for r in result if r[0] == "error"]
             if ok:
