@@ -688,7 +688,7 @@ def hash_command(workspace, workers, scheduler, quiet, max_rows) -> int:
     """Hash every decodable catalog image of WORKSPACE whose content has no cached hashes.
 
     One reduced decode per file gives the average, difference, DCT, wavelet and
-    colour hashes, the DCT hash of the 8 rotations/flips and of 35 crop windows
+    colour hashes, the DCT hash of the 8 rotations/flips and of 69 crop windows
     (see docs/hashing.md). Hashes are cached by SHA-256, so a re-run only hashes
     new content. Files that cannot be hashed are listed and recorded as problems
     of step "hash"; exit code 1 means there were some.

@@ -65,17 +65,41 @@ PIL_TRANSPOSE = (
 #: ``INVERSE_ORIENTATION[k]`` undoes transform ``k``: quarter turns swap, the rest undo themselves.
 INVERSE_ORIENTATION = (0, 3, 2, 1, 4, 5, 6, 7)
 
-#: Spans kept along each axis by the crop windows, as fractions (start, end) of the side.
+#: Spans kept along each axis by the coarse crop windows, as fractions (start, end) of the side.
 CROP_SPANS = ((0.0, 1.0), (0.0, 0.9), (0.1, 1.0), (0.0, 0.8), (0.1, 0.9), (0.2, 1.0))
 
-#: Crop windows as (left, top, right, bottom) fractions: every (x span, y span) pair of
-#: :data:`CROP_SPANS`, y span in the outer loop, x span inner, leaving out the whole image
-#: (whose DCT hash is ``phash``). 35 windows; ``crop_hashes[k]`` belongs to ``CROP_WINDOWS[k]``.
+#: Side lengths of the fine crop windows, as fractions of the side, and the step of their
+#: offsets. A fine window keeps the same share of both sides, as a crop that keeps the
+#: picture's shape does; its offsets step by :data:`FINE_CROP_STEP` from 0 to 1 - length.
+FINE_CROP_LENGTHS = (0.875, 0.775)
+FINE_CROP_STEP = 0.05
+
+
+def _fine_spans(length: float) -> list[tuple[float, float]]:
+    starts = np.arange(0.0, 1.0 - length + 1e-9, FINE_CROP_STEP)
+    return [(round(float(a), 4), round(float(a) + length, 4)) for a in starts]
+
+
+#: Crop windows as (left, top, right, bottom) fractions. First the coarse windows: every
+#: (x span, y span) pair of :data:`CROP_SPANS`, y span in the outer loop, x span inner,
+#: leaving out the whole image (whose DCT hash is ``phash``): 35 windows. Then the fine
+#: windows, for each of :data:`FINE_CROP_LENGTHS` every (x span, y span) pair of that
+#: length: 9 + 25 = 34 windows. 69 in all; ``crop_hashes[k]`` belongs to ``CROP_WINDOWS[k]``.
+#: The coarse windows alone sit up to 0.05 of a side from a crop keeping 75-95% of each
+#: side, and the DCT hash of such a crop was then 10-18 bits from its best window for about
+#: one crop in five of two 2,000-image demos; with the fine windows 81 of 82 crops were within
+#: 8 bits (tried in development on demo seeds 0 and 1), while unrelated pictures within 8
+#: bits of a window rose from 0.4% to 0.5% of pairs.
 CROP_WINDOWS = tuple(
     (x0, y0, x1, y1)
     for (y0, y1) in CROP_SPANS
     for (x0, x1) in CROP_SPANS
     if (x0, x1, y0, y1) != (0.0, 1.0, 0.0, 1.0)
+) + tuple(
+    (x0, y0, x1, y1)
+    for length in FINE_CROP_LENGTHS
+    for (y0, y1) in _fine_spans(length)
+    for (x0, x1) in _fine_spans(length)
 )
 
 _FORM = re.compile(r"^([a-z][a-z0-9_]*):([0-9]+):([0-9a-f]+)$")
@@ -525,7 +549,7 @@ def window_dct_hashes(
     >>> img = Image.linear_gradient("L").resize((128, 96))
     >>> codes = window_dct_hashes(img)
     >>> codes.shape, codes.dtype
-    ((35,), dtype('uint64'))
+    ((69,), dtype('uint64'))
     """
     if hash_size != HASH_SIZE:
         raise ValueError("window_dct_hashes packs 64-bit codes: hash_size must be 8")
@@ -592,7 +616,7 @@ def hash_thumbnail(image: Image.Image) -> dict:
     bits) equal imagehash 4.3's functions on the same image; ``phash_t0`` ..
     ``phash_t7`` are the DCT hashes of the 8 rotations/flips
     (:data:`DIHEDRAL_TRANSFORMS`, ``phash_t0 == phash``); ``crop_hashes`` is an
-    array of 35 window codes (:data:`CROP_WINDOWS`).
+    array of 69 window codes (:data:`CROP_WINDOWS`).
 
     Returns
     -------
@@ -607,7 +631,7 @@ def hash_thumbnail(image: Image.Image) -> dict:
     >>> h["phash"] == h["phash_t0"] == dct_hash(img).value
     True
     >>> len(h["crop_hashes"])
-    35
+    69
     """
     return hash_thumbnails([image])[0]
 

@@ -96,7 +96,7 @@ def test_hash_thumbnail_agrees_with_imagehash_on_its_input(name):
     assert h["phash"] == h["phash_t0"] == ref_int(imagehash.phash(rgb))
     assert h["whash"] == ref_int(imagehash.whash(rgb, image_scale=H.WHASH_IMAGE_SCALE))
     assert h["colorhash"] == ref_int(imagehash.colorhash(rgb, binbits=H.COLORHASH_BINBITS))
-    assert h["crop_hashes"].dtype == np.uint64 and len(h["crop_hashes"]) == len(H.CROP_WINDOWS) == 35
+    assert h["crop_hashes"].dtype == np.uint64 and len(h["crop_hashes"]) == len(H.CROP_WINDOWS) == 69
 
 
 # --- orientations ---------------------------------------------------------------------
@@ -166,9 +166,29 @@ def test_window_codes_are_close_to_phash_of_the_crop(name):
 
 
 def test_crop_windows_cover_every_span_pair_but_the_whole_image():
-    assert len(set(H.CROP_WINDOWS)) == 35
+    coarse, fine = H.CROP_WINDOWS[:35], H.CROP_WINDOWS[35:]
+    assert len(set(H.CROP_WINDOWS)) == 69
     assert (0.0, 0.0, 1.0, 1.0) not in H.CROP_WINDOWS
-    assert H.CROP_WINDOWS[0] == (0.0, 0.0, 0.9, 1.0)  # y span (0, 1), x span (0, 0.9)
+    assert coarse[0] == (0.0, 0.0, 0.9, 1.0)  # y span (0, 1), x span (0, 0.9)
+    assert {(w[0], w[2]) for w in coarse} == set(H.CROP_SPANS)
+    # fine windows keep the same share of both sides, every offset step of 0.05 from 0 to 1 - length
+    assert all(np.isclose(r - l, b - t) for l, t, r, b in fine)
+    assert sorted({round(r - l, 4) for l, t, r, b in fine}) == [0.775, 0.875]
+    assert sorted({l for l, t, r, b in fine if np.isclose(r - l, 0.775)}) == [0.0, 0.05, 0.1, 0.15, 0.2]
+    assert max(max(r, b) for l, t, r, b in fine) <= 1.0
+
+
+def test_fine_windows_bring_off_grid_crops_within_the_candidate_radius():
+    # a crop keeping 82% of each side at an offset of 0.09 lies between the coarse windows;
+    # reference: imagehash 4.3.2 phash of the cropped photograph (scikit-image's astronaut)
+    img = IMAGES["astronaut"]
+    w, h = img.size
+    crop = img.crop((round(0.09 * w), round(0.06 * h), round(0.91 * w), round(0.88 * h)))
+    target = ref_int(imagehash.phash(crop))
+    codes = H.window_dct_hashes(img)
+    best_coarse = min((int(c) ^ target).bit_count() for c in codes[:35])
+    best_all = min((int(c) ^ target).bit_count() for c in codes)
+    assert best_all <= 8 and best_all < best_coarse
 
 
 def _crop_distances():
@@ -305,4 +325,4 @@ def test_grey_copy_and_colour_image_have_distant_colour_codes():
 def test_tiny_images_do_not_crash():
     for size in [(1, 1), (2, 3), (5, 2)]:
         h = H.hash_thumbnail(Image.new("RGB", size, (10, 200, 30)))
-        assert len(h["crop_hashes"]) == 35
+        assert len(h["crop_hashes"]) == len(H.CROP_WINDOWS)
