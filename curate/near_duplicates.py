@@ -311,6 +311,30 @@ def _score_hash_pairs(h: pd.DataFrame, pq: np.ndarray, radius: int) -> pd.DataFr
     return out
 
 
+def among_best_of_either(end_a, end_b, keys, ascending, limit: int) -> np.ndarray:
+    """Boolean mask of the pairs ``(end_a[i], end_b[i])`` that are among the ``limit`` first
+    pairs of either end, ordering each end's pairs by ``keys`` (one array per key, with its
+    ``ascending`` flag) and then by position.
+
+    Examples
+    --------
+    Pair 0 (ends 0 and 1, key 9) is neither end's best: end 0 has pair 2 (key 1), end 1
+    has pair 3 (key 0). Pair 1 is end 2's only pair.
+
+    >>> among_best_of_either([0, 0, 0, 1], [1, 2, 3, 3], [[9, 5, 1, 0]], [True], 1).tolist()
+    [False, True, True, True]
+    """
+    n = len(end_a)
+    columns = {f"key{k}": np.tile(np.asarray(v), 2) for k, v in enumerate(keys)}
+    ends = pd.DataFrame({"pair": np.tile(np.arange(n), 2),
+                         "end": np.concatenate([np.asarray(end_a), np.asarray(end_b)]), **columns})
+    ends = ends.sort_values(["end", *columns, "pair"], ascending=[True, *ascending, True], kind="stable")
+    rank = ends.groupby("end", sort=False).cumcount().to_numpy()
+    keep = np.zeros(n, bool)
+    keep[ends["pair"].to_numpy()[rank < limit]] = True
+    return keep
+
+
 def _best_possible(pairs: pd.DataFrame, limit: int | None) -> pd.DataFrame:
     """Keep every ``near`` pair, and a ``possible`` pair when it is among the ``limit`` best
     (score, then smallest crop-window distance) of either of its two contents."""
@@ -320,16 +344,10 @@ def _best_possible(pairs: pd.DataFrame, limit: int | None) -> pd.DataFrame:
     if possible.size == 0:
         return pairs
     sub = pairs.iloc[possible]
-    ends = pd.DataFrame({
-        "pair": np.tile(possible, 2),
-        "row": np.concatenate([sub["p"].to_numpy(), sub["q"].to_numpy()]),
-        "score": np.tile(sub["score"].to_numpy(), 2),
-        "d_crop": np.tile(sub["d_crop"].to_numpy(), 2),
-    }).sort_values(["row", "score", "d_crop", "pair"], ascending=[True, False, True, True], kind="stable")
-    rank = ends.groupby("row", sort=False).cumcount().to_numpy()
     keep = np.ones(len(pairs), bool)
-    keep[possible] = False
-    keep[ends["pair"].to_numpy()[rank < limit]] = True
+    keep[possible] = among_best_of_either(sub["p"].to_numpy(), sub["q"].to_numpy(),
+                                          [sub["score"].to_numpy(), sub["d_crop"].to_numpy()],
+                                          [False, True], limit)
     return pairs[keep]
 
 
