@@ -36,6 +36,18 @@ CHUNK_SIZE = 1 << 20
 #: SHA-256 of zero bytes (FIPS 180-4): every empty file has it, so it never marks a copy.
 EMPTY_SHA256 = hashlib.sha256(b"").hexdigest()
 
+
+def copy_digests(digests):
+    """Digests that can join copies, as a pandas Series like ``digests``: missing, blank and
+    the empty file's digest become missing (empty files are not copies of one another).
+
+    >>> import pandas as pd
+    >>> copy_digests(pd.Series(["ab", "", None, EMPTY_SHA256])).tolist()
+    ['ab', nan, nan, nan]
+    """
+    text = digests.astype("string")
+    return digests.where((text.str.len() > 0).fillna(False) & (text != EMPTY_SHA256).fillna(False))
+
 #: file name endings (lower case) taken as images when walking a folder
 IMAGE_EXTENSIONS = frozenset(
     {".jpg", ".jpeg", ".jpe", ".jfif", ".png", ".tif", ".tiff", ".bmp", ".dib", ".webp"}

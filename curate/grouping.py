@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from curate.file_probe import EMPTY_SHA256
+from curate.file_probe import copy_digests
 from curate.report import Finding, Reason, Report
 
 #: Id values that mean "no id" (compared after stripping and case-folding).
@@ -257,7 +257,7 @@ def group_images(
     lesion_key = _refuse(lesion_key, lesion_raw, source, "lesion_id", placeholders,
                          max_id_share, min_overshared_images, refused)
     sha = _column_text(cat, "sha256")
-    sha = sha.where((sha.str.len() > 0) & (sha != EMPTY_SHA256))  # empty files are not copies
+    sha = copy_digests(sha)
 
     findings: list[Finding] = [
         Finding("groups", r["reason"], f"{r['column']} {r['value']!r} on {r['images']} images "

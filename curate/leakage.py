@@ -32,7 +32,7 @@ import numpy as np
 import pandas as pd
 
 from curate.errors import LeakageError
-from curate.file_probe import EMPTY_SHA256
+from curate.file_probe import copy_digests
 from curate.grouping import is_placeholder_id
 from curate.manifest_table import standard_columns
 from curate.report import Finding, LeakReason, Report
@@ -289,7 +289,7 @@ def find_leaks(
 
     if "sha256" in t.columns:
         checks[LeakReason.EXACT_DUPLICATE.value] = True
-        digest = t["sha256"].where(t["sha256"] != EMPTY_SHA256)  # empty files are not copies
+        digest = copy_digests(t["sha256"])
         found.append(_shared_key_leaks(t, digest, LeakReason.EXACT_DUPLICATE, order))
     else:
         checks[LeakReason.EXACT_DUPLICATE.value] = False

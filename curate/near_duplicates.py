@@ -49,7 +49,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
 from curate.hamming_index import hamming_distance, radius_pairs, radius_query
-from curate.file_probe import EMPTY_SHA256
+from curate.file_probe import copy_digests
 from curate.hashing import INVERSE_ORIENTATION
 
 __all__ = [
@@ -360,7 +360,7 @@ def _expand_to_images(hash_pairs: pd.DataFrame, members: pd.DataFrame) -> pd.Dat
 
 
 def _exact_pairs(catalog: pd.DataFrame) -> pd.DataFrame:
-    c = catalog.loc[catalog["sha256"].notna() & (catalog["sha256"] != EMPTY_SHA256), ["image_id", "sha256"]]
+    c = catalog.loc[copy_digests(catalog["sha256"]).notna(), ["image_id", "sha256"]]
     codes = pd.factorize(c["sha256"])[0].astype(np.uint64)
     i, j, _ = radius_pairs(codes, 0)
     ids = c["image_id"].to_numpy()

@@ -414,6 +414,15 @@ def test_empty_files_in_two_splits_are_not_exact_duplicates():
     assert find_leaks(t).counts() == {"exact_duplicate": 1}
 
 
+def test_blank_digests_in_a_manifest_are_not_exact_duplicates():
+    from curate.leakage import find_leaks
+
+    # a manifest whose digest cells are blank for some rows: blank is unknown, not a shared value
+    t = pd.DataFrame({"path": ["a.png", "b.png", "c.png", "d.png"], "split": ["train", "test"] * 2,
+                      "sha256": ["", "", "11", "11"]})
+    assert find_leaks(t).counts() == {"exact_duplicate": 1}
+
+
 def test_crop_check_runs_only_on_pairs_that_could_leak(tmp_path):
     import numpy as np
     from PIL import Image
