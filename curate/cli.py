@@ -546,8 +546,10 @@ def classes_command(workspace, max_images, min_images, out_dir, depths, tree) ->
 @command(main, "skin-tone", "Estimate each image's skin tone (ITA) and its bin (stored per SHA-256).")
 @click.argument("workspace", type=click.Path(file_okay=False, exists=True))
 @click.option("--recompute", is_flag=True, help="Recompute files already estimated.")
+@click.option("--workers", type=click.IntRange(min=1), default=None,
+              help="Processes reading the files (default: every core).")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bar.")
-def skin_tone_command(workspace, recompute, quiet) -> int:
+def skin_tone_command(workspace, recompute, workers, quiet) -> int:
     """Estimate the Individual Typology Angle of the skin around each lesion in WORKSPACE.
 
     ITA = arctan((L* - 50) / b*) in degrees, from the median L* and b* of the
@@ -563,7 +565,7 @@ def skin_tone_command(workspace, recompute, quiet) -> int:
     from curate.skin_tone_files import estimate_skin_tone
 
     ws = _open_workspace(workspace)
-    table = estimate_skin_tone(ws, recompute=recompute, progress=not quiet)
+    table = estimate_skin_tone(ws, recompute=recompute, progress=not quiet, workers=workers)
     counts = table["ita_bin"].value_counts()
     order = [name for name, _ in ITA_BINS]
     click.echo("skin tone (distinct files): "

@@ -14,7 +14,7 @@ import pandas as pd
 from curate.skin_tone import estimate_ita, ita_bin
 from curate.store import Workspace
 
-__all__ = ["estimate_skin_tone", "image_ita"]
+__all__ = ["estimate_skin_tone", "image_ita", "ita_chunk"]
 
 
 def image_ita(path, *, max_side: int = 256) -> float:
@@ -32,14 +32,21 @@ def image_ita(path, *, max_side: int = 256) -> float:
     return estimate_ita(pixels)
 
 
+def ita_chunk(items) -> list[tuple[int, float]]:
+    """``(key, ITA)`` of ``(key, path, max_side)`` items, one per item; what a worker runs."""
+    return [(key, image_ita(path, max_side=max_side)) for key, path, max_side in items]
+
+
 def estimate_skin_tone(
-    ws: Workspace, *, recompute: bool = False, max_side: int = 256, progress: bool = True
+    ws: Workspace, *, recompute: bool = False, max_side: int = 256, progress: bool = True,
+    workers: int | None = None,
 ) -> pd.DataFrame:
     """Estimate and store the ITA of every decodable catalog file not yet in ``skin_tone``.
 
-    Returns the whole ``skin_tone`` table (sha256, ita, ita_bin).
+    ``workers`` processes read the files (default: every core). Returns the whole
+    ``skin_tone`` table (sha256, ita, ita_bin).
     """
-    from tqdm.auto import tqdm
+    from curate.chunked_work import resolve_workers, run_chunks
 
     catalog = ws.catalog()
     catalog = catalog[(catalog["decodable"] == 1) & catalog["sha256"].notna()]
@@ -47,10 +54,14 @@ def estimate_skin_tone(
     if not recompute:
         done = set(ws.read_sql("SELECT sha256 FROM skin_tone")["sha256"])
         files = files[~files["sha256"].isin(done)]
+    items = [(k, path, max_side) for k, path in enumerate(files["path"])]
+    values = np.full(len(items), np.nan)
+    for results in run_chunks(ita_chunk, items, workers=resolve_workers(workers), progress=progress,
+                              desc="skin tone", unit="image"):  # chunks arrive as they finish
+        for k, value in results:
+            values[k] = value
     rows = []
-    for sha, path in tqdm(list(zip(files["sha256"], files["path"])), desc="skin tone",
-                          unit="image", disable=not progress):
-        value = image_ita(path, max_side=max_side)
+    for sha, value in zip(files["sha256"], values):
         label = ita_bin(value)[0]
         rows.append((sha, None if np.isnan(value) else value, label))
     with ws.transaction() as con:

@@ -1,6 +1,7 @@
 """Skin tone: our sRGB -> CIE L*a*b* against scikit-image and CIE values; ITA and its bins."""
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from curate.skin_tone import ITA_BINS, estimate_ita, ita, ita_bin, skin_mask, skin_pixels_lab, srgb_to_lab
@@ -120,3 +121,33 @@ def test_mask_and_too_few_pixels():
     black = np.zeros((30, 30, 3), dtype=np.uint8)
     assert np.isnan(estimate_ita(black))
     assert skin_pixels_lab(black).shape == (0, 3)
+
+
+def test_workspace_estimate_in_two_processes_matches_one_file_at_a_time(tmp_path):
+    from PIL import Image
+
+    from curate.ingest import scan_folder
+    from curate.skin_tone_files import estimate_skin_tone, image_ita
+    from curate.store import Workspace
+
+    rng = np.random.default_rng(3)
+    folder = tmp_path / "photos"
+    folder.mkdir()
+    for k in range(40):
+        skin = np.array([200, 150, 120]) - k * 3  # darker skin file by file
+        pixels = np.clip(skin + rng.normal(0, 6, (64, 64, 3)), 0, 255).astype(np.uint8)
+        pixels[24:40, 24:40] = (70, 45, 35)  # a dark lesion in the middle
+        Image.fromarray(pixels).save(folder / f"p{k:02d}.png")
+    (folder / "broken.png").write_bytes(b"not a picture")
+    ws = Workspace.create(tmp_path / "ws")
+    scan_folder(ws, folder, source="clinic", progress=False)
+    two = estimate_skin_tone(ws, workers=2, progress=False)
+    one = estimate_skin_tone(ws, workers=1, recompute=True, progress=False)
+    pd.testing.assert_frame_equal(two, one)
+    paths = ws.catalog().set_index("sha256")["path"]
+    expected = [image_ita(paths[s]) for s in two["sha256"]]
+    np.testing.assert_allclose(two["ita"].to_numpy(float), expected)
+    assert two["ita"].notna().sum() == 40  # the broken file is not decodable: not estimated
+    # darker skin gives a smaller ITA (CIE L*a*b*: L* falls as skin darkens)
+    by_name = dict(zip(paths.reindex(two["sha256"]).map(lambda p: p.rsplit("/", 1)[-1]), two["ita"]))
+    assert by_name["p00.png"] > by_name["p39.png"]
