@@ -65,6 +65,11 @@ DEFAULT_RADIUS = 8
 #: ``possible`` pairs kept per image content: its best ones by score (see score_pairs). On a
 #: 5,000-image demo, 5 kept 69 of the 71 crop and combination copies among 28,600 candidates.
 MAX_POSSIBLE_PER_IMAGE = 5
+#: Candidate pairs scored at a time. Scoring holds some 70 x 8 bytes per pair at once (the
+#: crop windows against each orientation), so 14 million candidates of a 100,000-image demo
+#: scored in one go took 21 GB; in chunks, a chunk's pairs that are not among the best of
+#: either image within the chunk cannot be among the best overall and are dropped at once.
+SCORE_CHUNK_PAIRS = 200_000
 #: Structural hash families, as stored.
 STRUCTURAL = ("ahash", "dhash", "phash", "whash")
 #: families searched for candidates (see _candidate_hash_pairs for why two suffice)
@@ -223,21 +228,28 @@ def _candidate_hash_pairs(h: pd.DataFrame, radius: int, workers) -> np.ndarray:
     return np.stack([key // n, key % n], axis=1) if key.size else np.zeros((0, 2), np.int64)
 
 
-def _best_crop_distance(h: pd.DataFrame, p: np.ndarray, q: np.ndarray) -> np.ndarray:
+def _crop_window_table(h: pd.DataFrame) -> np.ndarray | None:
+    """The crop-window codes of every hash row, ``(n, windows)`` uint64, or None when the
+    rows have none (or differing numbers of windows)."""
+    if "crop_hashes" not in h.columns:
+        return None
+    crops = h["crop_hashes"].tolist()
+    widths = {np.asarray(c).size for c in crops if c is not None}
+    if len(widths) != 1 or 0 in widths:
+        return None
+    return np.stack([np.asarray(c, dtype=np.uint64) for c in crops])
+
+
+def _best_crop_distance(h: pd.DataFrame, p: np.ndarray, q: np.ndarray, table: np.ndarray | None) -> np.ndarray:
     """Smallest DCT distance between a crop window of one image and the other's whole image.
 
     The other image is taken in each of its 8 rotations/flips, so a crop that was
-    also turned is matched.
+    also turned is matched. ``table``: :func:`_crop_window_table` of ``h``.
     """
     best = np.full(p.shape[0], 64, dtype=np.int64)
-    if "crop_hashes" not in h.columns or p.size == 0:
+    if table is None or p.size == 0:
         return best
-    crops = h["crop_hashes"].tolist()
     phash = _codes(h, "phash")
-    widths = {np.asarray(c).size for c in crops if c is not None}
-    if len(widths) != 1 or 0 in widths:
-        return best
-    table = np.stack([np.asarray(c, dtype=np.uint64) for c in crops])  # (n, windows)
     w = table.shape[1]
     for t in range(8):
         turned = phash if t == 0 else _codes(h, f"phash_t{t}")
@@ -247,8 +259,9 @@ def _best_crop_distance(h: pd.DataFrame, p: np.ndarray, q: np.ndarray) -> np.nda
     return best
 
 
-def _score_hash_pairs(h: pd.DataFrame, pq: np.ndarray, radius: int) -> pd.DataFrame:
-    """Distances, best orientation, crop flag, score and verdict for hash-row pairs."""
+def _score_hash_pairs(h: pd.DataFrame, pq: np.ndarray, radius: int, crop_table: np.ndarray | None) -> pd.DataFrame:
+    """Distances, best orientation, crop flag, score and verdict for hash-row pairs
+    (``crop_table``: :func:`_crop_window_table` of ``h``)."""
     p, q = pq[:, 0], pq[:, 1]
     code = {f: _codes(h, f) for f in (*STRUCTURAL, "colorhash")}
     d = {f: hamming_distance(code[f][p], code[f][q]).astype(np.int64) for f in code}
@@ -259,7 +272,7 @@ def _score_hash_pairs(h: pd.DataFrame, pq: np.ndarray, radius: int) -> pd.DataFr
     d_phash_t = d_turn[np.arange(len(p)), best_t].astype(np.int64)
     d_ahash_t = hamming_distance(transform_codes(code["ahash"][p], best_t), code["ahash"][q]).astype(np.int64)
     d_whash_t = hamming_distance(transform_codes(code["whash"][p], best_t), code["whash"][q]).astype(np.int64)
-    d_crop = _best_crop_distance(h, p, q)
+    d_crop = _best_crop_distance(h, p, q, crop_table)
     colour_ok = d["colorhash"] <= COLOUR_TOLERANCE
 
     # alignment 0: as stored, 4 structural hashes
@@ -351,6 +364,21 @@ def _best_possible(pairs: pd.DataFrame, limit: int | None) -> pd.DataFrame:
     return pairs[keep]
 
 
+def _score_in_chunks(h: pd.DataFrame, pq: np.ndarray, radius: int, limit: int | None) -> pd.DataFrame:
+    """:func:`_best_possible` of :func:`_score_hash_pairs` over all of ``pq``, scored
+    :data:`SCORE_CHUNK_PAIRS` at a time. The same pairs come out: within a chunk a pair ranks
+    no lower than among all pairs (same order, fewer rivals), so what a chunk drops the
+    whole would drop too."""
+    table = _crop_window_table(h)
+    parts = []
+    for start in range(0, len(pq), SCORE_CHUNK_PAIRS):
+        chunk = _score_hash_pairs(h, pq[start:start + SCORE_CHUNK_PAIRS], radius, table)
+        parts.append(_best_possible(chunk, limit))
+    if len(parts) == 1:
+        return parts[0]
+    return _best_possible(pd.concat(parts, ignore_index=True), limit)
+
+
 def _expand_to_images(hash_pairs: pd.DataFrame, members: pd.DataFrame) -> pd.DataFrame:
     """Hash-row pairs -> image pairs (every image holding either content)."""
     m = members[["row", "image_id"]]
@@ -434,8 +462,7 @@ def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DE
     if len(h) >= 2:
         pq = _candidate_hash_pairs(h, radius, workers)
         if len(pq):
-            scored = _best_possible(_score_hash_pairs(h, pq, radius), max_possible)
-            parts.append(_expand_to_images(scored, members))
+            parts.append(_expand_to_images(_score_in_chunks(h, pq, radius, max_possible), members))
     if not parts:
         return _empty_pairs()
     x = pd.concat(parts, ignore_index=True)

@@ -347,3 +347,16 @@ def test_possible_pairs_are_capped_to_the_best_few_of_each_image():
     for image, v in scores.items():
         n_kept = ((kept["image_a"] == image) | (kept["image_b"] == image)).sum()
         assert n_kept >= min(2, len(v))
+
+
+@pytest.mark.parametrize("chunk", [7, 30])
+def test_scoring_in_chunks_keeps_exactly_the_pairs_of_one_pass(chunk, monkeypatch):
+    # reference: the same candidates scored in one pass (chunk larger than the candidate set)
+    import curate.near_duplicates as nd
+
+    catalog, hashes = _clustered_hash_frame(7, n_clusters=10, size=10)
+    whole = score_pairs(catalog, hashes, radius=8, max_possible=2)
+    monkeypatch.setattr(nd, "SCORE_CHUNK_PAIRS", chunk)
+    chunked = score_pairs(catalog, hashes, radius=8, max_possible=2)
+    assert (whole["verdict"] == "possible").sum() > 2 * chunk  # several chunks hold kept pairs
+    pd.testing.assert_frame_equal(whole, chunked)
