@@ -221,10 +221,15 @@ def check_split_leakage(ctx: PipelineContext) -> dict:
 
 
 def freeze_demo_split(ctx: PipelineContext) -> dict:
-    """Freeze the split as a manifest (refused while the split leaks)."""
+    """Freeze the split as a manifest (refused while the split leaks: by the workspace's own
+    evidence, or by the independent check of the step before)."""
     from curate.errors import LeakageError
     from curate.freeze import freeze_split
 
+    if ctx.leak_free is False:
+        leaks = ctx.results.get("check", {}).get("leaks", {})
+        return {"frozen": "no, the independent leakage check found leaks",
+                "reason": ", ".join(f"{n} {kind}" for kind, n in leaks.items()) or "see the check step"}
     try:
         frozen = freeze_split(ctx.workspace, "demo", progress=ctx.progress, command="curate demo")
     except LeakageError as exc:

@@ -142,3 +142,18 @@ def test_later_steps_find_the_byte_copies_and_freeze_a_manifest(ran):
     if "freeze" in summary["steps"] and summary["steps"]["freeze"]["frozen"] == "yes":
         for path in summary["steps"]["freeze"]["files"].split(", "):
             assert (out / path).is_file()
+
+
+def test_freeze_is_refused_when_the_independent_check_found_leaks(ran):
+    out, summary, _, _ = ran
+    from curate.pipeline import PipelineContext, freeze_demo_split, read_sources
+    from curate.store import Workspace
+
+    ws = Workspace.open(summary["workspace"])
+    manifests = sorted(p.name for p in (ws.path / "manifests").glob("*")) if (ws.path / "manifests").exists() else []
+    ctx = PipelineContext(out, ws, read_sources(out), False, lambda line: None, leak_free=False)
+    ctx.results["check"] = {"leaks": {"near_duplicate": 3}}
+    result = freeze_demo_split(ctx)
+    assert result["frozen"].startswith("no") and result["reason"] == "3 near_duplicate"
+    after = sorted(p.name for p in (ws.path / "manifests").glob("*")) if (ws.path / "manifests").exists() else []
+    assert after == manifests  # nothing written
