@@ -284,7 +284,7 @@ def _scan(ws, source, root, entries, meta_rows, findings, progress, started, wor
     result = ScanResult(source=source, root=root, files_seen=len(entries))
     now = utc_now()
     with_meta = meta_rows is not None
-    known = _known_rows(ws, with_meta)
+    known = _known_rows(ws, with_meta, source, [e.path for e in entries])
     to_read, reused = [], []
     for entry in entries:
         old = known.get(entry.path)
@@ -394,15 +394,24 @@ def _at_row(f: Finding, csv_path: str, row: MetadataRow) -> Finding:
     return Finding(f.check, f.reason, f"{row.path!r}: {f.message}", file=csv_path, row=row.row)
 
 
-def _known_rows(ws, with_meta: bool) -> dict[str, tuple]:
-    """path -> (image_id, size, mtime_ns, has digest, present, source, root[, *metadata])."""
+def _known_rows(ws, with_meta: bool, source: str, paths) -> dict[str, tuple]:
+    """path -> (image_id, size, mtime_ns, has digest, present, source, root[, *metadata]) of
+    the rows of ``source`` and of any other row whose path is in ``paths``.
+
+    Only these rows matter to a scan of ``source``, and reading the whole catalog for each
+    source made a re-scan of 4 sources of a 100,000-image catalog read 400,000 rows."""
     meta = "".join(f", {c}" for c in META_COLUMNS) if with_meta else ""
+    select = f"SELECT path, image_id, size, mtime_ns, sha256 IS NOT NULL, present, source, root{meta} FROM images"
     con = ws.connect()
     try:
-        cur = con.execute(
-            f"SELECT path, image_id, size, mtime_ns, sha256 IS NOT NULL, present, source, root{meta} FROM images"
-        )
-        return {r[0]: r[1:] for r in cur}
+        known = {r[0]: r[1:] for r in con.execute(select + " WHERE source = ?", (source,))}
+        missing = [(p,) for p in paths if p not in known]
+        if missing:  # files seen first now, or last scanned under another source
+            con.execute("CREATE TEMP TABLE wanted_paths(path TEXT PRIMARY KEY)")
+            con.executemany("INSERT OR IGNORE INTO temp.wanted_paths VALUES (?)", missing)
+            known.update((r[0], r[1:]) for r in con.execute(
+                select + " WHERE path IN (SELECT path FROM temp.wanted_paths)"))
+        return known
     finally:
         con.close()
 
