@@ -38,6 +38,7 @@ law and institutional rules.
 
 from __future__ import annotations
 
+import operator
 import os
 import time
 from dataclasses import dataclass, field
@@ -426,9 +427,12 @@ def _stored_issues(ws) -> dict[str, tuple]:
         con.close()
 
 
+_META_GETTER = operator.itemgetter(*META_COLUMNS)
+
+
 def _meta_values(meta_rows, path) -> tuple:
     row = meta_rows.get(path)
-    return tuple(row.values[c] for c in META_COLUMNS) if row else (None,) * len(META_COLUMNS)
+    return _META_GETTER(row.values) if row else (None,) * len(META_COLUMNS)
 
 
 def _row(entry: FileEntry, facts: file_probe.FileFacts, root, source, meta_rows) -> tuple:

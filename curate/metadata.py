@@ -223,7 +223,8 @@ def read_metadata(data: bytes, *, file: str = "", columns: dict | None = None) -
         _refuse(file, IngestIssue.UNREADABLE_METADATA, f"cannot read the header: {exc}", 1)
     mapping = _map_columns(header, columns, file)
     table = MetadataTable(file=file, columns=mapping, encoding=encoding, findings=findings)
-    index = {name: header.index(column) for name, column in mapping.items()}
+    index = [(FIELD_COLUMNS[name], header.index(column)) for name, column in mapping.items()]
+    unmapped = [name for name in list(FIELD_COLUMNS.values())[1:] if name not in {k for k, _ in index}]
     line = reader.line_num + 1
     while True:
         try:
@@ -235,7 +236,7 @@ def read_metadata(data: bytes, *, file: str = "", columns: dict | None = None) -
             line = reader.line_num + 1
             continue
         row, line = line, reader.line_num + 1
-        if not any(v.strip() for v in record):
+        if not "".join(record).strip():
             continue  # blank line
         if len(record) != len(header):
             table.findings.append(
@@ -248,7 +249,7 @@ def read_metadata(data: bytes, *, file: str = "", columns: dict | None = None) -
                 )
             )
             continue
-        values = {FIELD_COLUMNS[name]: (record[i].strip() or None) for name, i in index.items()}
+        values = {key: (record[i].strip() or None) for key, i in index}
         path = values.pop("path")
         if path is None:
             table.findings.append(
@@ -267,8 +268,8 @@ def read_metadata(data: bytes, *, file: str = "", columns: dict | None = None) -
                         row,
                     )
                 )
-        for name in list(FIELD_COLUMNS.values())[1:]:
-            values.setdefault(name, None)
+        for name in unmapped:
+            values[name] = None
         table.rows.append(MetadataRow(row=row, path=path, values=values))
     return table
 
@@ -298,8 +299,12 @@ def join_paths(table: MetadataTable, root: str) -> tuple[dict[str, MetadataRow],
     root = os.path.normpath(os.path.abspath(root))
     rows: dict[str, MetadataRow] = {}
     findings: list[Finding] = []
+    prefix = root.rstrip(os.sep) + os.sep
     for r in table.rows:
-        path = os.path.normpath(os.path.join(root, os.path.expanduser(r.path)))
+        if _plain_relative(r.path):  # normpath(join(root, p)) would give the same
+            path = prefix + r.path
+        else:
+            path = os.path.normpath(os.path.join(root, os.path.expanduser(r.path)))
         if not is_inside(path, root):
             findings.append(
                 _finding(IngestIssue.OUTSIDE_ROOT, f"{r.path!r} is outside {root}; row skipped", table.file, r.row)
@@ -331,6 +336,17 @@ def join_paths(table: MetadataTable, root: str) -> tuple[dict[str, MetadataRow],
                 )
             )
     return rows, findings
+
+
+def _plain_relative(path: str) -> bool:
+    """True for a relative path that normalising leaves as it is: no leading ``/`` or ``~``,
+    no empty, ``.`` or ``..`` part (``"/."`` catches both), no trailing separator.
+
+    >>> [_plain_relative(p) for p in ("a/b.jpg", "./a.jpg", "a/../b.jpg", "a//b.jpg", "/a.jpg", "~/a.jpg", "a/")]
+    [True, False, False, False, False, False, False]
+    """
+    return (os.sep == "/" and not path.startswith(("/", "~")) and "/." not in "/" + path
+            and "//" not in path and not path.endswith("/"))
 
 
 def is_inside(path: str, root: str) -> bool:

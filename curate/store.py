@@ -164,6 +164,12 @@ CREATE TABLE meta (
 #: ``MIGRATIONS[v]`` upgrades a database from version ``v - 1`` to ``v``.
 MIGRATIONS: dict[int, str] = {
     1: _META_SQL + _CATALOG_SQL + _HASHES_SQL + _PAIRS_SQL + _TAXONOMY_SQL + _SPLITS_SQL,
+    # 2: the count of byte-identical files after every scan reads the index alone (sha256,
+    # present, size) instead of one table row per file; it serves sha256 lookups too
+    2: """
+CREATE INDEX images_copies ON images(sha256, present, size);
+DROP INDEX images_sha256;
+""",
 }
 SCHEMA_VERSION = max(MIGRATIONS)
 

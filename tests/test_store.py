@@ -52,3 +52,25 @@ def test_a_half_migrated_database_is_completed(tmp_path):
     sqlite3.connect(tmp_path / DB_NAME).close()
     ws = Workspace.open(tmp_path)
     assert ws.schema_version() == SCHEMA_VERSION
+
+
+def test_a_version_1_catalog_gets_the_covering_index_and_keeps_its_rows(tmp_path):
+    from curate.store import _split_sql
+
+    con = sqlite3.connect(tmp_path / DB_NAME)
+    for statement in _split_sql(MIGRATIONS[1]):
+        con.execute(statement)
+    con.execute("INSERT INTO meta(key, value) VALUES ('schema_version', '1')")
+    con.execute("INSERT INTO images(path, root, source, size, sha256, first_seen, last_seen) "
+                "VALUES ('/d/a.jpg', '/d', 'c', 5, 'ab', 't', 't')")
+    con.commit()
+    con.close()
+    ws = Workspace.open(tmp_path)
+    assert ws.schema_version() == SCHEMA_VERSION >= 2
+    # reference: SQLite's own catalogue (sqlite_master) and query planner
+    indexes = set(ws.read_sql("SELECT name FROM sqlite_master WHERE type = 'index'")["name"])
+    assert "images_copies" in indexes and "images_sha256" not in indexes
+    plan = ws.read_sql("EXPLAIN QUERY PLAN SELECT COUNT(*) FROM images WHERE present = 1 AND size > 0 "
+                       "AND sha256 IS NOT NULL GROUP BY sha256")
+    assert plan["detail"].str.contains("COVERING INDEX images_copies").any()
+    assert ws.catalog()["path"].tolist() == ["/d/a.jpg"]
