@@ -127,6 +127,10 @@ def scan_folder(
         Name of the source; defaults to the folder's name.
     metadata : str or path, optional
         A CSV with one row per image; its paths are relative to ``root`` (or absolute).
+        When neither the CSV (its SHA-256), the column mapping nor the tree (every
+        file's size and modification time) changed since the last scan of this
+        source, the join is not redone: the catalog holds its values, and its
+        problems are carried over.
     columns : dict, optional
         Our field -> CSV column, see :func:`curate.metadata.parse_columns`.
     progress : bool
@@ -170,16 +174,60 @@ def scan_folder(
         )
     source = source or os.path.basename(root.rstrip(os.sep)) or root
     started = time.perf_counter()
-    meta_rows, findings = (None, [])
-    if metadata is not None:
-        meta_rows, findings = _load_metadata(ws, metadata, columns, root, source)
-    entries = []
+    entries, walk_findings = [], []
     for item in _progress(walk_images(root), progress, desc=f"listing {source}", unit=" files"):
-        (entries if isinstance(item, FileEntry) else findings).append(item)
-    if meta_rows is not None:
-        walked = {e.path for e in entries}
-        findings.extend(_unmatched_rows(meta_rows, walked, os.path.abspath(os.fspath(metadata))))
-    return _scan(ws, source, root, entries, meta_rows, findings, progress, started, workers)
+        (entries if isinstance(item, FileEntry) else walk_findings).append(item)
+    if metadata is None:
+        return _scan(ws, source, root, entries, None, walk_findings, progress, started, workers)
+    csv_path = os.path.abspath(os.fspath(metadata))
+    signature = _metadata_signature(csv_path, columns, root)
+    key = f"metadata_signature:{source}"
+    if signature is not None and ws.get_meta(key) == signature and _tree_unchanged(ws, source, entries):
+        # the CSV and the tree are as the last scan left them: its metadata values are in the
+        # catalog already, and its findings about the CSV are carried over
+        findings = _stored_findings(ws, source, csv_path) + walk_findings
+        return _scan(ws, source, root, entries, None, findings, progress, started, workers)
+    meta_rows, findings = _load_metadata(ws, metadata, columns, root, source)
+    findings.extend(walk_findings)
+    findings.extend(_unmatched_rows(meta_rows, {e.path for e in entries}, csv_path))
+    result = _scan(ws, source, root, entries, meta_rows, findings, progress, started, workers)
+    if signature is not None:
+        ws.set_meta(key, signature)
+    return result
+
+
+def _metadata_signature(csv_path: str, columns, root: str) -> str | None:
+    """What a metadata join depends on: the CSV's SHA-256 (its bytes, not its modification
+    time, whose clock ticks too coarsely to tell two quick writes apart), the column mapping
+    and the root; None when the CSV cannot be read (the join then reports it)."""
+    import hashlib
+    import json
+
+    try:
+        digest = hashlib.sha256(Path(csv_path).read_bytes()).hexdigest()
+    except OSError:
+        return None
+    return json.dumps([csv_path, digest, sorted((columns or {}).items()), root])
+
+
+def _tree_unchanged(ws, source: str, entries) -> bool:
+    """True when every walked file is in the catalog under ``source`` with the same size and
+    modification time and a digest, and no file of ``source`` present before is missing."""
+    known = _known_rows(ws, False, source, [e.path for e in entries])
+    for e in entries:
+        old = known.get(e.path)
+        if old is None or not old[3] or not old[4] or old[5] != source or old[1] != e.size or old[2] != e.mtime_ns:
+            return False
+    walked = {e.path for e in entries}
+    return not any(old[5] == source and old[4] and path not in walked for path, old in known.items())
+
+
+def _stored_findings(ws, source: str, csv_path: str) -> list[Finding]:
+    """The findings about ``csv_path`` that the last scan of ``source`` recorded."""
+    rows = ws.read_sql("SELECT file, row, kind, message FROM problems WHERE step = ? AND source = ? AND file = ? "
+                       "ORDER BY problem_id", (CHECK, source, csv_path))
+    return [Finding(CHECK, IngestIssue(kind), message or "", file=file, row=None if pd.isna(row) else int(row))
+            for file, row, kind, message in rows.itertuples(index=False)]
 
 
 def scan_metadata(

@@ -191,3 +191,35 @@ def test_a_relative_metadata_path_is_reported_absolute(ws, folder, tmp_path, mon
     result = scan_folder(ws, folder, metadata="meta.csv", progress=False)
     assert _problems(result) == [("duplicate_path", 4), ("path_not_found", 3)]
     assert {f.file for f in result.report} == {str(tmp_path / "meta.csv")}
+
+
+def test_unchanged_tree_and_csv_rescan_skips_the_join_but_keeps_its_problems(ws, folder, tmp_path, monkeypatch):
+    import curate.ingest as ingest
+
+    csv = _write(tmp_path / "meta.csv", "path,patient_id,label\na.jpg,P1,naevus\ngone.jpg,P2,wart\n")
+    first = scan_folder(ws, folder, metadata=csv, progress=False)
+    assert _problems(first) == [("path_not_found", 3)]
+    calls = []
+    original = ingest._load_metadata
+
+    def counting(*args, **kwargs):
+        calls.append(args)
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(ingest, "_load_metadata", counting)
+    again = scan_folder(ws, folder, metadata=csv, progress=False)
+    assert calls == [] and again.reused == 3
+    assert _problems(again) == _problems(first)  # the CSV's problems are carried over
+    stored = ws.problems("scan")
+    assert sorted(zip(stored["kind"], stored["row"])) == [("path_not_found", 3)]
+    # same size, new content, written at once: the join runs again (the digest tells them apart)
+    _write(csv, "path,patient_id,label\na.jpg,P1,melano\ngone.jpg,P2,wart\n")
+    scan_folder(ws, folder, metadata=csv, progress=False)
+    assert len(calls) == 1
+    assert ws.catalog().set_index("path").loc[str(folder / "a.jpg"), "label"] == "melano"
+    # a new image in the tree: the join runs again, and the new file gets its row's values
+    save(folder / "d.jpg", drawn_image(colour=(90, 60, 50)))
+    _write(csv, "path,patient_id,label\na.jpg,P1,melano\nd.jpg,P3,wart\n")
+    scan_folder(ws, folder, metadata=csv, progress=False)
+    assert len(calls) == 2
+    assert ws.catalog().set_index("path").loc[str(folder / "d.jpg"), "patient_id"] == "P3"
