@@ -177,23 +177,35 @@ def scan_folder(
     entries, walk_findings = [], []
     for item in _progress(walk_images(root), progress, desc=f"listing {source}", unit=" files"):
         (entries if isinstance(item, FileEntry) else walk_findings).append(item)
+    key = _join_key(source)
     if metadata is None:
+        _forget_join(ws, source)  # this scan replaces the source's problems: the CSV's go
         return _scan(ws, source, root, entries, None, walk_findings, progress, started, workers)
     csv_path = os.path.abspath(os.fspath(metadata))
     signature = _metadata_signature(csv_path, columns, root)
-    key = f"metadata_signature:{source}"
-    if signature is not None and ws.get_meta(key) == signature and _tree_unchanged(ws, source, entries):
-        # the CSV and the tree are as the last scan left them: its metadata values are in the
-        # catalog already, and its findings about the CSV are carried over
-        findings = _stored_findings(ws, source, csv_path) + walk_findings
-        return _scan(ws, source, root, entries, None, findings, progress, started, workers)
+    if signature is not None and ws.get_meta(key) == signature:
+        known = _known_rows(ws, False, source, [e.path for e in entries])
+        if _tree_unchanged(known, source, entries):
+            # the CSV and the tree are as the last scan left them: its metadata values are in
+            # the catalog already, and its findings about the CSV are carried over
+            findings = _stored_findings(ws, source, csv_path) + walk_findings
+            return _scan(ws, source, root, entries, None, findings, progress, started, workers, known=known)
     meta_rows, findings = _load_metadata(ws, metadata, columns, root, source)
     findings.extend(walk_findings)
     findings.extend(_unmatched_rows(meta_rows, {e.path for e in entries}, csv_path))
     result = _scan(ws, source, root, entries, meta_rows, findings, progress, started, workers)
-    if signature is not None:
-        ws.set_meta(key, signature)
+    ws.set_meta(key, signature or "")
     return result
+
+
+def _join_key(source: str) -> str:
+    return f"metadata_signature:{source}"
+
+
+def _forget_join(ws, source: str) -> None:
+    """The next scan of ``source`` with a metadata CSV joins it again."""
+    if ws.get_meta(_join_key(source)):
+        ws.set_meta(_join_key(source), "")
 
 
 def _metadata_signature(csv_path: str, columns, root: str) -> str | None:
@@ -210,10 +222,10 @@ def _metadata_signature(csv_path: str, columns, root: str) -> str | None:
     return json.dumps([csv_path, digest, sorted((columns or {}).items()), root])
 
 
-def _tree_unchanged(ws, source: str, entries) -> bool:
-    """True when every walked file is in the catalog under ``source`` with the same size and
-    modification time and a digest, and no file of ``source`` present before is missing."""
-    known = _known_rows(ws, False, source, [e.path for e in entries])
+def _tree_unchanged(known: dict, source: str, entries) -> bool:
+    """True when every walked file is in the catalog (``known``: :func:`_known_rows`) under
+    ``source`` with the same size and modification time and a digest, and no file of
+    ``source`` present before is missing."""
     for e in entries:
         old = known.get(e.path)
         if old is None or not old[3] or not old[4] or old[5] != source or old[1] != e.size or old[2] != e.mtime_ns:
@@ -285,6 +297,7 @@ def scan_metadata(
             entries.append(item)
         else:
             findings.append(_at_row(item, csv_path, row))
+    _forget_join(ws, source)  # a folder scan of this source joins its CSV again next time
     return _scan(ws, source, root, entries, meta_rows, findings, progress, started, workers)
 
 
@@ -327,13 +340,14 @@ def exact_duplicates(catalog) -> pd.DataFrame:
 # --- the shared core ---------------------------------------------------------------
 
 
-def _scan(ws, source, root, entries, meta_rows, findings, progress, started, workers) -> ScanResult:
+def _scan(ws, source, root, entries, meta_rows, findings, progress, started, workers, known=None) -> ScanResult:
     from curate.store import record_problems, utc_now
 
     result = ScanResult(source=source, root=root, files_seen=len(entries))
     now = utc_now()
     with_meta = meta_rows is not None
-    known = _known_rows(ws, with_meta, source, [e.path for e in entries])
+    if known is None or with_meta:
+        known = _known_rows(ws, with_meta, source, [e.path for e in entries])
     to_read, reused = [], []
     for entry in entries:
         old = known.get(entry.path)

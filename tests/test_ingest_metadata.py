@@ -223,3 +223,9 @@ def test_unchanged_tree_and_csv_rescan_skips_the_join_but_keeps_its_problems(ws,
     scan_folder(ws, folder, metadata=csv, progress=False)
     assert len(calls) == 2
     assert ws.catalog().set_index("path").loc[str(folder / "d.jpg"), "patient_id"] == "P3"
+    # a scan without the CSV replaces the source's problems; the next scan with it joins again
+    _write(csv, "path,patient_id,label\na.jpg,P1,melano\nd.jpg,P3,wart\ngone.jpg,P2,wart\n")
+    scan_folder(ws, folder, metadata=csv, progress=False)
+    scan_folder(ws, folder, progress=False)
+    back = scan_folder(ws, folder, metadata=csv, progress=False)
+    assert len(calls) == 4 and _problems(back) == [("path_not_found", 4)]
