@@ -18,8 +18,9 @@ How a pair is checked:
    orientation) choices are first tried at :data:`PROBE_SCALES`; when none reaches
    :data:`PROBE_MIN_NCC` the pair is not a crop, otherwise the best
    :data:`KEEP_ORIENTATIONS` go on to the full scale grid. The best (direction,
-   orientation, scale) of the coarse search is refined at the fine size on a finer
-   grid around the coarse scale.
+   orientation, scale) of the coarse search, when its NCC reaches
+   :data:`COARSE_MIN_NCC`, is refined at the fine size on a finer grid around the
+   coarse scale.
 3. **Confirmation.** The aligned region of the original and the turned template are
    hashed again with :func:`curate.hashing.average_hash`,
    :func:`~curate.hashing.difference_hash`, :func:`~curate.hashing.dct_hash` and
@@ -28,7 +29,7 @@ How a pair is checked:
    **and** at least :data:`MIN_AGREEING` of these 4 hash families, the DCT hash among
    them, are within their :data:`CONFIRM_THRESHOLDS`, the 4 distances adding up to at
    most :data:`MAX_TOTAL` bits: several measures must agree, never one threshold on
-   one hash.
+   one hash. (The hashes are computed only when both NCC tests pass.)
 """
 
 from __future__ import annotations
@@ -68,6 +69,12 @@ PROBE_SCALES = (0.85, 1.0)
 PROBE_MIN_NCC = 0.60
 #: How many (direction, orientation) choices go on to the full coarse scale search.
 KEEP_ORIENTATIONS = 3
+#: Smallest NCC of the best coarse alignment for the fine stage to run. On a 5,000-image demo
+#: the 100 confirmed crops and turned copies among 1,600 checked pairs scored at least 0.97
+#: coarse, and 47% of the unrelated pairs under 0.80 stop here. Textured photographs score
+#: lower coarse than fine (the coarse grid misses the alignment by up to half a pixel): a
+#: crop of scikit-image's "coins" scored 0.90 coarse and 0.98 fine, hence the margin.
+COARSE_MIN_NCC = 0.80
 #: Largest average-hash distance (bits) of the coarse alignment for the fine stage to run.
 COARSE_MAX_AHASH = 12
 #: Steps around the coarse scale tried in the fine search.
@@ -111,9 +118,10 @@ class CropMatch:
     detail_ncc : float
         The same for the fine detail (image minus its Gaussian blur), -1..1.
     distances : dict
-        Hamming distances (bits) of the re-computed hashes, by family.
+        Hamming distances (bits) of the re-computed hashes, by family; empty when the
+        check stopped before them (the alignment could not be confirmed anyway).
     agreeing : int
-        How many hash families are within :data:`CONFIRM_THRESHOLDS`.
+        How many hash families are within :data:`CONFIRM_THRESHOLDS` (0 when not hashed).
     """
 
     confirmed: bool
@@ -319,6 +327,11 @@ def _hash_distances(region: Image.Image, crop: Image.Image) -> dict:
     }
 
 
+def _stopped(crop_i, t, scale, ncc, box=(0.0, 0.0, 0.0, 0.0), detail_ncc=0.0) -> CropMatch:
+    """The result of a check that stopped before the confirming hashes: not confirmed."""
+    return CropMatch(False, crop_i == 0, int(t), float(scale), box, float(ncc), float(detail_ncc), {}, 0)
+
+
 def check_crop(image_a: Image.Image, image_b: Image.Image) -> CropMatch:
     """Check whether one of two images is a crop (keeping >= 70% of the width) of the other.
 
@@ -367,8 +380,7 @@ def check_crop(image_a: Image.Image, image_b: Image.Image) -> CropMatch:
             trials.append((ncc, crop_i, t))
     if max(trials)[0] < PROBE_MIN_NCC:  # nothing lines up even roughly: not a crop
         _, crop_i, t = max(trials)
-        return CropMatch(False, crop_i == 0, int(t), PROBE_SCALES[0], (0.0, 0.0, 0.0, 0.0), float(max(trials)[0]),
-                         0.0, {}, 0)
+        return _stopped(crop_i, t, PROBE_SCALES[0], max(trials)[0])
     kept = sorted(trials, reverse=True)[:KEEP_ORIENTATIONS]
     for crop_i in (0, 1):  # score every kept orientation of one direction in one batch
         searches[crop_i].best([(t, COARSE_SCALES) for _, i, t in kept if i == crop_i])
@@ -377,22 +389,28 @@ def check_crop(image_a: Image.Image, image_b: Image.Image) -> CropMatch:
         ncc, f, *_ = searches[crop_i].best([(t, COARSE_SCALES)])[0]
         if best is None or ncc > best[0]:
             best = (ncc, crop_i, t, f)
-    _, crop_i, t, f0 = best
+    coarse_ncc, crop_i, t, f0 = best
+    if coarse_ncc < COARSE_MIN_NCC:
+        return _stopped(crop_i, t, f0, coarse_ncc)
     # early reject: the coarse aligned region must already look like the crop (average hash)
     _, _, x, y, w, h = searches[crop_i].best([(t, [f0])])[0]
     piece = Image.fromarray(np.clip(searches[crop_i].original.image[y:y + h, x:x + w], 0, 255).astype(np.uint8))
     rough = Image.fromarray(np.clip(_turn(coarse[crop_i], t), 0, 255).astype(np.uint8))
     if w == 0 or average_hash(piece) - average_hash(rough) > COARSE_MAX_AHASH:
-        return CropMatch(False, crop_i == 0, int(t), float(f0), (0.0, 0.0, 0.0, 0.0), float(best[0]), 0.0, {}, 0)
+        return _stopped(crop_i, t, f0, coarse_ncc)
     fine = [_grey(luma[0], WORK_SIDE), _grey(luma[1], WORK_SIDE)]
     original = fine[1 - crop_i]
     search = _Placements(fine[crop_i], original)
     ncc, f, x, y, w, h = search.best([(t, f0 + FINE_STEPS)])[0]
     if w == 0:  # nothing fits at the fine size
-        return CropMatch(False, crop_i == 0, t, f0, (0.0, 0.0, 0.0, 0.0), float(best[0]), 0.0, {}, 0)
+        return _stopped(crop_i, t, f0, coarse_ncc)
     piece = original[y:y + h, x:x + w]
     template = search.templates[t, w]
     detail_ncc = _ncc(_detail(piece), _detail(template))
+    H, W = original.shape
+    box = (x / W, y / H, (x + w) / W, (y + h) / H)
+    if ncc < MIN_NCC or detail_ncc < MIN_DETAIL_NCC:  # cannot be confirmed: the hashes are not needed
+        return _stopped(crop_i, t, f, ncc, box, detail_ncc)
     region = Image.fromarray(np.clip(piece, 0, 255).astype(np.uint8))
     turned = luma[crop_i]
     if PIL_TRANSPOSE[t] is not None:
@@ -401,9 +419,7 @@ def check_crop(image_a: Image.Image, image_b: Image.Image) -> CropMatch:
         turned = Image.fromarray(np.clip(_turn(fine[crop_i], t), 0, 255).astype(np.uint8))
     distances = {k: int(v) for k, v in _hash_distances(region, turned).items()}
     agreeing = sum(distances[k] <= CONFIRM_THRESHOLDS[k] for k in CONFIRM_THRESHOLDS)
-    H, W = original.shape
-    box = (x / W, y / H, (x + w) / W, (y + h) / H)
-    confirmed = (ncc >= MIN_NCC and detail_ncc >= MIN_DETAIL_NCC and agreeing >= MIN_AGREEING
+    confirmed = (agreeing >= MIN_AGREEING
                  and distances[REQUIRED_FAMILY] <= CONFIRM_THRESHOLDS[REQUIRED_FAMILY]
                  and sum(distances.values()) <= MAX_TOTAL)
     return CropMatch(bool(confirmed), crop_i == 0, int(t), float(f), box, float(ncc), float(detail_ncc),
