@@ -19,17 +19,14 @@ import numpy as np
 import pandas as pd
 
 from curate.hashing import INVERSE_ORIENTATION
-from curate.near_duplicates import among_best_of_either
+from curate.near_duplicates import MAX_CHECK_DISTANCE, worth_checking
+from curate.near_duplicates import MAX_CHECKS_PER_IMAGE as _PER_IMAGE
 
 __all__ = ["pairs_to_check", "upgrade_crop_pairs", "check_chunk", "MAX_CHECK_D_CROP", "MAX_CHECKS_PER_IMAGE", "EVIDENCE_COLUMNS"]
 
-#: Only ``possible`` pairs whose best crop window, or whole picture under its best
-#: rotation/flip, is within this many bits (DCT hash) are checked.
-MAX_CHECK_D_CROP = 8
-#: ... and only a pair among the 2 closest of either of its images. On a 2,000-image demo
-#: every true copy among the pairs to check was among the 2 closest of one of its images
-#: (50 the closest, 4 the second), while the limit halved the checks (3,801 to 2,035).
-MAX_CHECKS_PER_IMAGE = 2
+#: Which ``possible`` pairs are checked: see :func:`curate.near_duplicates.worth_checking`.
+MAX_CHECK_D_CROP = MAX_CHECK_DISTANCE
+MAX_CHECKS_PER_IMAGE = _PER_IMAGE
 #: A confirmed alignment covering at least this share of the original's width is the whole
 #: picture (turned or flipped), not a crop: the pair becomes ``near`` with ``crop = 0``.
 WHOLE_PICTURE_SCALE = 0.97
@@ -62,21 +59,13 @@ def pairs_to_check(pairs: pd.DataFrame, *, max_d_crop: int = MAX_CHECK_D_CROP,
     >>> pairs_to_check(p, per_image=1).tolist()
     [True, False, False]
     """
-    def bits(column):
-        if column not in pairs.columns:
-            return np.full(len(pairs), 64.0)
-        return pd.to_numeric(pairs[column], errors="coerce").fillna(64).to_numpy()
+    def column(name):
+        return pairs[name] if name in pairs.columns else np.full(len(pairs), np.nan)
 
-    closest = np.minimum(bits("d_crop"), bits("d_phash"))
-    todo = (pairs["verdict"].to_numpy() == "possible") & (closest <= max_d_crop)
-    if per_image is None or not {"image_a", "image_b"} <= set(pairs.columns) or not todo.any():
-        return todo
-    rows = np.flatnonzero(todo)
-    score = bits("score") if "score" in pairs.columns else np.zeros(len(pairs))
-    keep = among_best_of_either(pairs["image_a"].to_numpy()[rows], pairs["image_b"].to_numpy()[rows],
-                                [closest[rows], score[rows]], [True, False], per_image)
-    todo[rows[~keep]] = False
-    return todo
+    if per_image is not None and not {"image_a", "image_b"} <= set(pairs.columns):
+        per_image = None
+    return worth_checking(column("image_a"), column("image_b"), pairs["verdict"], column("d_crop"),
+                          column("d_phash"), column("score"), max_distance=max_d_crop, per_image=per_image)
 
 
 def _decode(path: str):
@@ -146,21 +135,22 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
     a_ids, b_ids = out["image_a"].to_numpy()[todo], out["image_b"].to_numpy()[todo]
     order = np.lexsort((b_ids, a_ids))
     items = [(int(todo[k]), str(paths.get(a_ids[k], "")), str(paths.get(b_ids[k], ""))) for k in order]
-    cols = {c: out.columns.get_loc(c) for c in ("verdict", "crop", *EVIDENCE_COLUMNS)}
+    checked = np.zeros(len(out), bool)
+    confirmed = np.zeros(len(out), bool)
+    evidence = np.full((len(out), 4), np.nan)  # ncc, scale, orientation, agreeing
     for results in run_chunks(check_chunk, items, workers=resolve_workers(workers), progress=progress,
                               desc="crop check", unit="pair"):
         for k, m in results:
-            if m is None:
-                continue  # a file is unreadable now: the pair stays as it was
-            confirmed, ncc, scale, orientation, agreeing = m
-            out.iloc[k, cols["crop_checked"]] = 1
-            out.iloc[k, cols["crop_ncc"]] = ncc
-            out.iloc[k, cols["crop_scale"]] = scale
-            out.iloc[k, cols["crop_orientation"]] = orientation
-            out.iloc[k, cols["crop_agreeing"]] = agreeing
-            if confirmed:
-                out.iloc[k, cols["verdict"]] = "near"
-                out.iloc[k, cols["crop"]] = int(scale < WHOLE_PICTURE_SCALE)
+            if m is not None:  # None: a file is unreadable now, the pair stays as it was
+                checked[k], confirmed[k] = True, m[0]
+                evidence[k] = m[1:]
+    # set once at the end: a cell at a time through pandas costs more than the check itself
+    out["crop_checked"] = checked.astype(np.int64)
+    for j, c in enumerate(EVIDENCE_COLUMNS[1:]):
+        out[c] = evidence[:, j]
+    scale = evidence[:, 1]
+    out["verdict"] = np.where(confirmed, "near", out["verdict"].to_numpy(object))
+    out["crop"] = np.where(confirmed, (scale < WHOLE_PICTURE_SCALE).astype(np.int64), out["crop"].to_numpy())
     return out
 
 

@@ -9,7 +9,7 @@ import pytest
 from PIL import Image, ImageDraw, ImageFilter
 
 from curate.crop_check import COARSE_SCALES, MIN_KEEP, _Original, _Placements, _turn, check_crop
-from curate.crop_files import pairs_to_check, upgrade_crop_pairs
+from curate.crop_files import MAX_CHECK_D_CROP, pairs_to_check, upgrade_crop_pairs
 from curate.hashing import PIL_TRANSPOSE
 
 
@@ -200,7 +200,8 @@ def test_best_placements_match_a_loop_over_scales_with_match_template():
 
 
 def test_pairs_to_check_takes_possible_pairs_with_crop_evidence():
-    p = pd.DataFrame({"verdict": ["possible", "possible", "near", "possible"], "d_crop": [8, 9, 1, None]})
+    limit = MAX_CHECK_D_CROP
+    p = pd.DataFrame({"verdict": ["possible", "possible", "near", "possible"], "d_crop": [limit, limit + 1, 1, None]})
     assert pairs_to_check(p).tolist() == [True, False, False, False]
 
 

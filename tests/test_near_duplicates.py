@@ -328,7 +328,7 @@ def test_searching_only_difference_and_dct_hashes_loses_no_pair(seed, monkeypatc
 def test_possible_pairs_are_capped_to_the_best_few_of_each_image():
     catalog, hashes = _clustered_hash_frame(5, n_clusters=8, size=12)
     every = score_pairs(catalog, hashes, radius=8, max_possible=None)
-    capped = score_pairs(catalog, hashes, radius=8, max_possible=2)
+    capped = score_pairs(catalog, hashes, radius=8, max_possible=2, max_checks=0)
     key = ["image_a", "image_b"]
     confident = every[every["verdict"] != "possible"].sort_values(key).reset_index(drop=True)
     pd.testing.assert_frame_equal(confident, capped[capped["verdict"] != "possible"].sort_values(key)
@@ -347,6 +347,24 @@ def test_possible_pairs_are_capped_to_the_best_few_of_each_image():
     for image, v in scores.items():
         n_kept = ((kept["image_a"] == image) | (kept["image_b"] == image)).sum()
         assert n_kept >= min(2, len(v))
+
+
+def test_the_cap_keeps_every_pair_the_crop_check_would_choose():
+    # reference: the crop check's choice (worth_checking) among all candidates, uncapped
+    from curate.near_duplicates import worth_checking
+
+    catalog, hashes = _clustered_hash_frame(5, n_clusters=8, size=12)
+    every = score_pairs(catalog, hashes, radius=8, max_possible=None)
+    chosen = every[worth_checking(every["image_a"], every["image_b"], every["verdict"], every["d_crop"],
+                                  every["d_phash"], every["score"], per_image=3)]
+    without = score_pairs(catalog, hashes, radius=8, max_possible=1, max_checks=0)
+    capped = score_pairs(catalog, hashes, radius=8, max_possible=1, max_checks=3)
+    key = ["image_a", "image_b"]
+    missing_without = chosen[key].merge(without[key], how="left", indicator=True)["_merge"].eq("left_only")
+    assert missing_without.any()  # the cap alone drops some of them
+    kept = chosen[key].merge(capped[key], how="left", indicator=True)["_merge"]
+    assert kept.eq("both").all()
+    assert len(capped) < len(every)
 
 
 @pytest.mark.parametrize("chunk", [7, 30])
