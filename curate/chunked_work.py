@@ -25,8 +25,19 @@ def resolve_workers(workers: int | None) -> int:
     return workers
 
 
-def _chunks(items: list, size: int) -> list[list]:
-    return [items[i : i + size] for i in range(0, len(items), size)]
+def _chunks(items: list, size: int, parallel: int = 1) -> list[list]:
+    """Consecutive chunks of at most ``size`` items, smaller toward the end (what is left over
+    ``2 * parallel``), so the workers run out of work at nearly the same time.
+
+    >>> [len(c) for c in _chunks(list(range(40)), 8, parallel=2)]
+    [8, 8, 6, 5, 4, 3, 2, 1, 1, 1, 1]
+    """
+    out, start = [], 0
+    while start < len(items):
+        step = max(1, min(size, -(-(len(items) - start) // (2 * parallel))))
+        out.append(items[start:start + step])
+        start += step
+    return out
 
 
 def run_chunks(func, items, *, workers: int, client=None, progress: bool = True, desc: str = "",
@@ -34,8 +45,8 @@ def run_chunks(func, items, *, workers: int, client=None, progress: bool = True,
     """Yield ``func(chunk)`` (a list, one result per item) for chunks of ``items`` as each
     finishes, with a progress bar.
 
-    Chunks hold at most ``chunk_size`` items, fewer so that each worker gets about 4
-    (the last ones then do not leave a core idle). With a ``dask.distributed.Client``
+    Chunks hold at most ``chunk_size`` items, fewer so that each worker gets about 4,
+    and the last ones fewer still (see :func:`_chunks`), so no core idles at the end. With a ``dask.distributed.Client``
     the chunks run on its cluster; with one worker or one chunk, in this process.
 
     >>> list(run_chunks(list, range(5), workers=1, progress=False, chunk_size=2))
@@ -46,7 +57,7 @@ def run_chunks(func, items, *, workers: int, client=None, progress: bool = True,
     items = list(items)
     parallel = workers if client is None else max(1, sum(client.nthreads().values()))
     size = max(1, min(chunk_size, -(-len(items) // (4 * parallel))))
-    chunks = _chunks(items, size)
+    chunks = _chunks(items, size, parallel)
     bar = tqdm(total=len(items), desc=desc, unit=unit, disable=not progress)
 
     def done(result):
