@@ -737,14 +737,17 @@ def pairs_command(workspace, radius, out_path, workers, max_rows, quiet) -> int:
     from curate.store import Workspace
 
     ws = Workspace.open(workspace)
-    pairs = pairs_for_output(find_pairs(ws, radius=DEFAULT_RADIUS if radius is None else radius,
-                                        workers=workers, progress=not quiet))
+    found = find_pairs(ws, radius=DEFAULT_RADIUS if radius is None else radius, workers=workers,
+                       progress=not quiet)
+    pairs = pairs_for_output(found)
     if out_path:
         pairs.to_csv(out_path, index=False)
     counts = pairs["verdict"].value_counts()
     conflicts = int(pairs["conflict"].notna().sum())
     click.echo(f"{len(pairs)} pairs: {int(counts.get('exact', 0))} exact, {int(counts.get('near', 0))} near, "
                f"{int(counts.get('possible', 0))} possible; {conflicts} with conflicting labels/patients")
+    click.echo(f"crop check: {found.attrs['crop_checked']} pairs looked at, {found.attrs['crop_cached']} of them "
+               "answered by an earlier run")
     if max_rows and len(pairs):
         click.echo(pairs[["path_a", "path_b", "verdict", "score", "conflict"]].head(max_rows).to_string(index=False))
     return EXIT_FINDINGS if counts.get("exact", 0) or counts.get("near", 0) else EXIT_OK

@@ -27,6 +27,10 @@ __all__ = ["pairs_to_check", "upgrade_crop_pairs", "check_chunk", "MAX_CHECK_D_C
 #: Which ``possible`` pairs are checked: see :func:`curate.near_duplicates.worth_checking`.
 MAX_CHECK_D_CROP = MAX_CHECK_DISTANCE
 MAX_CHECKS_PER_IMAGE = _PER_IMAGE
+#: Version of the answers of :func:`check_chunk` (the decode, :func:`curate.crop_check.check_crop`
+#: and its constants, the second look with filled surrounds). Cached answers of another version
+#: are not used (:mod:`curate.crop_check_store`): bump it whenever any of those changes.
+CHECK_VERSION = 1
 #: A confirmed alignment covering at least this share of the original's width is the whole
 #: picture (turned or flipped), not a crop: the pair becomes ``near`` with ``crop = 0``.
 WHOLE_PICTURE_SCALE = 0.97
@@ -79,7 +83,8 @@ def _decode(path: str):
 
 
 def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int = MAX_CHECK_D_CROP,
-                       workers: int | None = None, progress: bool = True) -> pd.DataFrame:
+                       workers: int | None = None, progress: bool = True, digests: Mapping | None = None,
+                       cache=None) -> pd.DataFrame:
     """Upgrade ``possible`` pairs to ``near`` where the crop check confirms a crop (``crop = 1``)
     or the whole picture turned or flipped (``crop = 0``).
 
@@ -96,6 +101,11 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
         Processes running the checks (default: every core).
     progress : bool
         Show a progress bar (tqdm) over the checked pairs.
+    digests, cache : mapping and Workspace, optional
+        ``image_id`` -> SHA-256 of the file, and a workspace whose table
+        ``crop_checks`` keeps answers by content (:mod:`curate.crop_check_store`):
+        pairs answered before (at :data:`CHECK_VERSION`) are read back, not checked
+        again, and new answers are kept. Both are needed for the cache to be used.
 
     Returns
     -------
@@ -103,7 +113,8 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
         A copy of ``pairs`` with upgraded verdicts and the :data:`EVIDENCE_COLUMNS`
         (``crop_checked`` 0/1; NCC, scale, orientation and agreeing hash families of
         the best alignment for checked pairs). ``attrs["crop_checked"]`` holds the
-        number of pairs checked.
+        number of pairs checked (read back from the cache included) and
+        ``attrs["crop_cached"]`` how many of them were read back.
 
     Examples
     --------
@@ -129,21 +140,44 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
         out[c] = np.nan
     todo = np.flatnonzero(pairs_to_check(out, max_d_crop=max_d_crop)) if len(out) else np.zeros(0, int)
     out.attrs["crop_checked"] = int(todo.size)
+    out.attrs["crop_cached"] = 0
     if not todo.size:
         return out
-    # pairs sharing an image go to the same chunk where possible, so it is decoded once per chunk
-    a_ids, b_ids = out["image_a"].to_numpy()[todo], out["image_b"].to_numpy()[todo]
-    order = np.lexsort((b_ids, a_ids))
-    items = [(int(todo[k]), str(paths.get(a_ids[k], "")), str(paths.get(b_ids[k], ""))) for k in order]
     checked = np.zeros(len(out), bool)
     confirmed = np.zeros(len(out), bool)
     evidence = np.full((len(out), 4), np.nan)  # ncc, scale, orientation, agreeing
+
+    def take(k, m):
+        if m is not None:  # None: a file is unreadable now, the pair stays as it was
+            checked[k], confirmed[k] = True, m[0]
+            evidence[k] = m[1:]
+
+    a_ids, b_ids = out["image_a"].to_numpy()[todo], out["image_b"].to_numpy()[todo]
+    keys = None
+    if cache is not None and digests is not None:
+        keys = [(digests.get(a), digests.get(b)) for a, b in zip(a_ids, b_ids)]
+        known = _cached(cache, keys)
+        for k, key in zip(todo, keys):
+            take(k, known.get(key))
+        out.attrs["crop_cached"] = len(known)
+        fresh = np.array([key not in known for key in keys], bool)
+        todo, a_ids, b_ids = todo[fresh], a_ids[fresh], b_ids[fresh]
+        keys = [key for key, f in zip(keys, fresh) if f]
+    # pairs sharing an image go to the same chunk where possible, so it is decoded once per chunk
+    order = np.lexsort((b_ids, a_ids))
+    items = [(int(todo[k]), str(paths.get(a_ids[k], "")), str(paths.get(b_ids[k], ""))) for k in order]
+    key_of = dict(zip(todo.tolist(), keys)) if keys is not None else {}
+    answers = []
     for results in run_chunks(check_chunk, items, workers=resolve_workers(workers), progress=progress,
                               desc="crop check", unit="pair"):
         for k, m in results:
-            if m is not None:  # None: a file is unreadable now, the pair stays as it was
-                checked[k], confirmed[k] = True, m[0]
-                evidence[k] = m[1:]
+            take(k, m)
+            if m is not None and None not in key_of.get(k, (None,)):
+                answers.append((*key_of[k], m))
+    if answers:
+        from curate.crop_check_store import store_checks
+
+        store_checks(cache, answers, CHECK_VERSION)
     # set once at the end: a cell at a time through pandas costs more than the check itself
     out["crop_checked"] = checked.astype(np.int64)
     for j, c in enumerate(EVIDENCE_COLUMNS[1:]):
@@ -152,6 +186,12 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
     out["verdict"] = np.where(confirmed, "near", out["verdict"].to_numpy(object))
     out["crop"] = np.where(confirmed, (scale < WHOLE_PICTURE_SCALE).astype(np.int64), out["crop"].to_numpy())
     return out
+
+
+def _cached(cache, keys) -> dict:
+    from curate.crop_check_store import cached_checks
+
+    return cached_checks(cache, [k for k in keys if None not in k], CHECK_VERSION)
 
 
 def check_chunk(items) -> list[tuple]:

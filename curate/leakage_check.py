@@ -4,8 +4,8 @@ This is the file-reading side of the leakage check and needs no workspace:
 it loads the split table (:func:`curate.manifest_io.read_manifest`), re-digests
 every file with :mod:`hashlib` (exact duplicates, missing and unreadable
 files), hashes the readable images and searches for near-duplicate pairs
-within a Hamming radius (perceptual hashes are cached in a workspace used
-only as a hash cache), then hands everything to the pure
+within a Hamming radius (perceptual hashes and crop check answers are cached in a
+workspace used only as a cache), then hands everything to the pure
 :func:`curate.leakage.find_leaks`.
 """
 
@@ -82,7 +82,8 @@ def check_leakage(
         Largest Hamming distance in bits (inclusive) for a near-duplicate;
         default: the near-duplicate engine's own default.
     cache : str, path, bool or None
-        Folder of the workspace used as a perceptual-hash cache. None: the
+        Folder of the workspace used as a cache of perceptual hashes and of the
+        crop check's answers (both by file content). None: the
         :func:`default_cache_dir`; False: no cache.
     ignore_ids : iterable of str
         Placeholder patient/lesion ids that never link images.
@@ -213,7 +214,8 @@ def near_duplicate_pairs(
         split = hashed["split"].astype(str).to_numpy()
         cross = split[scored["image_a"].to_numpy()] != split[scored["image_b"].to_numpy()]
     checked = upgrade_crop_pairs(scored[cross], dict(enumerate(absolute_of[p] for p in hashed["path"])),
-                                 workers=workers, progress=progress)
+                                 workers=workers, progress=progress, digests=dict(enumerate(hashed["sha256"])),
+                                 cache=ws)
     scored = pd.concat([checked, scored[~cross]], ignore_index=True) if (~cross).any() else checked
     path = hashed["path"].to_numpy()
     by_path = scored.drop(columns=["image_a", "image_b", "conflict"]).assign(

@@ -54,7 +54,9 @@ def find_pairs(ws, *, radius: int = DEFAULT_RADIUS, workers: int | None = None,
     -------
     DataFrame
         The stored pairs plus ``path_a``, ``path_b``, ``source_a``, ``source_b``,
-        sorted by score (highest first).
+        sorted by score (highest first). ``attrs["crop_checked"]``: pairs the
+        crop check answered, ``attrs["crop_cached"]``: how many of those answers
+        were kept from an earlier run (table ``crop_checks``).
 
     Examples
     --------
@@ -71,14 +73,17 @@ def find_pairs(ws, *, radius: int = DEFAULT_RADIUS, workers: int | None = None,
     hashes = load_hashes(ws)
     pairs = score_pairs(catalog, hashes, radius=radius, workers=workers)
     pairs = upgrade_crop_pairs(pairs, dict(zip(catalog["image_id"], catalog["path"])), workers=workers,
-                               progress=progress)
+                               progress=progress, digests=dict(zip(catalog["image_id"], catalog["sha256"])),
+                               cache=ws)
     rows = [tuple(_sql_value(v) for v in rec) for rec in pairs[PAIR_COLUMNS].astype(object).itertuples(index=False)]
     with ws.transaction() as con:
         con.execute("DELETE FROM pairs")
         con.executemany(
             f"INSERT INTO pairs({', '.join(PAIR_COLUMNS)}) VALUES ({', '.join('?' * len(PAIR_COLUMNS))})", rows
         )
-    return _with_paths(pairs, catalog)
+    out = _with_paths(pairs, catalog)
+    out.attrs.update(crop_checked=pairs.attrs.get("crop_checked", 0), crop_cached=pairs.attrs.get("crop_cached", 0))
+    return out
 
 
 def load_pairs(ws) -> pd.DataFrame:
@@ -156,8 +161,9 @@ def find_near_duplicates(paths_or_dataframe, *, radius: int = DEFAULT_RADIUS, wo
     workers : int, optional
         Processes for hashing, threads for the search.
     cache : Workspace or path, optional
-        A workspace whose ``hashes`` table serves as a hash cache (created if a
-        path to a missing folder is given).
+        A workspace whose ``hashes`` and ``crop_checks`` tables serve as caches of
+        the hashes and of the crop check's answers (created if a path to a missing
+        folder is given).
     progress : bool
         Show a progress bar while hashing.
 
@@ -197,7 +203,8 @@ def find_near_duplicates(paths_or_dataframe, *, radius: int = DEFAULT_RADIUS, wo
                            sha256=by_path.reindex(table["path"]).to_numpy())
     pairs = score_pairs(catalog, hashes.drop(columns=["path"]), radius=radius, workers=workers)
     pairs = upgrade_crop_pairs(pairs, dict(zip(catalog["image_id"], catalog["path"])), workers=workers,
-                               progress=progress)
+                               progress=progress, digests=dict(zip(catalog["image_id"], catalog["sha256"])),
+                               cache=cache)
     out = pairs_for_output(_with_paths(pairs, catalog))
     out.attrs["report"] = report
     return out

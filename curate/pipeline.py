@@ -154,6 +154,8 @@ def find_duplicate_pairs(ctx: PipelineContext) -> dict:
         "pairs": len(pairs),
         "verdicts": _counts(pairs["verdict"]) if len(pairs) else {},
         "conflicts": _counts(conflicts) if len(conflicts) else {},
+        "crop_checks": pairs.attrs.get("crop_checked", 0),
+        "crop_checks_kept_from_earlier_runs": pairs.attrs.get("crop_cached", 0),
     }
 
 

@@ -170,6 +170,21 @@ MIGRATIONS: dict[int, str] = {
 CREATE INDEX images_copies ON images(sha256, present, size);
 DROP INDEX images_sha256;
 """,
+    # 3: crop check results by the two files' contents (curate.crop_check_store), so the pairs
+    # step, the leakage check and repeated checks of one manifest check each pair once
+    3: """
+CREATE TABLE crop_checks (
+    sha_a         TEXT NOT NULL,          -- sha_a < sha_b
+    sha_b         TEXT NOT NULL,
+    check_version INTEGER NOT NULL,       -- curate.crop_check.CHECK_VERSION; others are checked again
+    confirmed     INTEGER NOT NULL,       -- 0/1
+    ncc           REAL,
+    scale         REAL,
+    orientation   INTEGER,                -- 0..7, the code turning the picture of sha_b onto sha_a
+    agreeing      INTEGER,
+    PRIMARY KEY (sha_a, sha_b)
+);
+""",
 }
 SCHEMA_VERSION = max(MIGRATIONS)
 

@@ -10,7 +10,7 @@ from PIL import Image, ImageDraw, ImageFilter
 
 from curate.crop_check import COARSE_SCALES, MIN_KEEP, _Original, _Placements, _turn, check_crop
 from curate.crop_files import MAX_CHECK_D_CROP, pairs_to_check, upgrade_crop_pairs
-from curate.hashing import PIL_TRANSPOSE
+from curate.hashing import INVERSE_ORIENTATION, PIL_TRANSPOSE
 
 
 def _skin(seed, size=(240, 180)):
@@ -224,6 +224,52 @@ def test_upgrade_marks_only_confirmed_crops(tmp_path):
     assert out.attrs["crop_checked"] == 3
     assert out.loc[0, "crop_ncc"] > 0.95 and pd.isna(out.loc[3, "crop_ncc"])
     assert pairs["verdict"].tolist()[0] == "possible"  # input left unchanged
+
+
+def _turned_crop_files(tmp_path):
+    """An original, a crop of it turned a quarter, and an unrelated lesion, as files."""
+    original = _lesion(_skin(2), 2)
+    crop = _random_crop(original, np.random.default_rng(2)).transpose(PIL_TRANSPOSE[1])
+    paths = {}
+    for i, (name, img) in enumerate((("o.png", original), ("c.png", crop), ("x.png", _lesion(_skin(2), 98)))):
+        img.save(tmp_path / name)
+        paths[i] = str(tmp_path / name)
+    digests = {i: f"{i:064x}" for i in paths}  # stand-ins: the cache only needs distinct keys
+    return paths, digests
+
+
+def _two_ways(pairs_ab):
+    both = pd.concat([pairs_ab, pairs_ab.rename(columns={"image_a": "image_b", "image_b": "image_a"})],
+                     ignore_index=True)
+    return both.assign(verdict="possible", d_crop=6, crop=0, orientation=0)
+
+
+def test_cached_crop_checks_are_read_back_not_checked_again(tmp_path, monkeypatch):
+    import curate.crop_files as crop_files
+    from curate.store import Workspace
+
+    paths, digests = _turned_crop_files(tmp_path)
+    ws = Workspace.create(tmp_path / "ws")
+    pairs = _two_ways(pd.DataFrame({"image_a": [0, 0], "image_b": [1, 2]}))
+    # reference: the same pairs checked with no cache
+    fresh = upgrade_crop_pairs(pairs, paths, workers=1, progress=False)
+    assert fresh["verdict"].tolist() == ["near", "possible", "near", "possible"]
+    # asked the other way round, the check reports the inverse turn
+    assert INVERSE_ORIENTATION[int(fresh.loc[0, "crop_orientation"])] == int(fresh.loc[2, "crop_orientation"])
+    first = upgrade_crop_pairs(pairs.iloc[:2], paths, workers=1, progress=False, digests=digests, cache=ws)
+    assert first.attrs["crop_cached"] == 0
+
+    def no_checks(items):
+        raise AssertionError(f"checked again: {items}")
+
+    monkeypatch.setattr(crop_files, "check_chunk", no_checks)
+    again = upgrade_crop_pairs(pairs, paths, workers=1, progress=False, digests=digests, cache=ws)
+    assert again.attrs["crop_cached"] == again.attrs["crop_checked"] == 4
+    pd.testing.assert_frame_equal(again, fresh)
+    # a new version of the check does not trust the old answers
+    monkeypatch.setattr(crop_files, "CHECK_VERSION", crop_files.CHECK_VERSION + 1)
+    with pytest.raises(AssertionError, match="checked again"):
+        upgrade_crop_pairs(pairs, paths, workers=1, progress=False, digests=digests, cache=ws)
 
 
 def test_find_near_duplicates_calls_a_crop_near(tmp_path):

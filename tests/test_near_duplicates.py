@@ -224,6 +224,9 @@ def test_find_pairs_writes_the_table_once(tmp_path):
     assert set(stored["verdict"]) >= {"exact", "near"}
     assert (stored["image_a"] < stored["image_b"]).all()
     assert set(stored.loc[stored["verdict"] == "exact", "conflict"]) == {"patient"}
+    # the second run reads the crop check's answers back from the workspace
+    assert first.attrs["crop_checked"] == again.attrs["crop_checked"] > 0
+    assert (first.attrs["crop_cached"], again.attrs["crop_cached"]) == (0, again.attrs["crop_checked"])
 
 
 def test_cli_pairs_writes_csv_and_exits_1_on_findings(tmp_path):
