@@ -10,9 +10,11 @@ How a pair is judged (the rule is written out in ``docs/near_duplicates.md``):
    ``radius`` bits on at least one of: average, difference, DCT or wavelet hash
    (as stored); the DCT hash of any of the 8 rotations/flips of one image against
    the other's DCT hash; the DCT hash of a crop window of one image against the
-   other's DCT hash. Found exactly with :mod:`curate.hamming_index`. A candidate is
-   kept when its DCT hash is within ``radius`` under some alignment (below) or
-   at least 3 of the 4 structural hashes are; one coarse hash alone is not enough.
+   other's DCT hash, within ``radius +`` :data:`WINDOW_EXTRA_RADIUS` bits. Found
+   exactly with :mod:`curate.hamming_index`. A candidate is kept when its DCT hash
+   is within ``radius`` as stored or turned, or a crop window within the wider
+   radius, or at least 3 of the 4 structural hashes are within ``radius``; one
+   coarse hash alone is not enough.
 2. **Alignment.** Each candidate is compared three ways: as stored (orientation
    0), under its best rotation/flip (the ``t`` minimising the DCT hash distance),
    and as a crop (best window). Under a rotation/flip the average and wavelet
@@ -461,8 +463,9 @@ def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DE
         The hash frame (one row per ``sha256``: uint64 ``ahash dhash phash whash
         colorhash phash_t0 .. phash_t7``, object ``crop_hashes``).
     radius : int
-        Candidate radius in bits (inclusive) on any hash family, orientation or
-        crop window; default :data:`DEFAULT_RADIUS`.
+        Candidate radius in bits (inclusive) on any hash family or orientation
+        (crop windows: :data:`WINDOW_EXTRA_RADIUS` more); default
+        :data:`DEFAULT_RADIUS`.
     max_possible : int or None
         Keep a ``possible`` pair only when it is among the ``max_possible`` best
         (by score) of one of its two images' contents; default
