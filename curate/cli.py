@@ -170,8 +170,9 @@ def _split_table_columns(text: str | None) -> dict[str, str]:
 @click.option("--csv", "csv_path", type=click.Path(dir_okay=False),
               help="Write the leaks as a CSV table (one row per leak) to this file.")
 @click.option("--cache", type=click.Path(file_okay=False),
-              help="Folder of the hash cache (a workspace); default $CURATE_CACHE_DIR or ~/.cache/curate.")
-@click.option("--no-cache", is_flag=True, help="Do not cache perceptual hashes.")
+              help="Folder of the cache of hashes and crop checks (a workspace); default $CURATE_CACHE_DIR "
+                   "or ~/.cache/curate.")
+@click.option("--no-cache", is_flag=True, help="Do not cache perceptual hashes or crop checks.")
 @click.option("--no-near-duplicates", is_flag=True, help="Skip hashing and the near-duplicate search.")
 @click.option("--columns", help="Column names when they differ, e.g. path=file,split=fold,patient=pid.")
 @click.option("--ignore-id", multiple=True, help="A placeholder patient/lesion id that links nothing (repeatable).")
