@@ -215,38 +215,45 @@ def _crop_table(hashes: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     return codes, np.repeat(np.arange(len(arrays), dtype=np.int64), counts)
 
 
-def _candidate_hash_pairs(h: pd.DataFrame, radius: int, workers) -> np.ndarray:
-    """Pairs (p < q) of hash rows within ``radius`` on any family / orientation / crop window."""
+def _pair_keys(a: np.ndarray, b: np.ndarray, n: int) -> np.ndarray:
+    """Sorted unique keys ``p * n + q`` (p < q) of the pairs (a[i], b[i]), a row with itself left out."""
+    keep = a != b
+    return np.unique(np.minimum(a[keep], b[keep]) * n + np.maximum(a[keep], b[keep]))
+
+
+def _candidate_hash_pairs(h: pd.DataFrame, radius: int, workers) -> tuple[np.ndarray, np.ndarray]:
+    """Pairs (p < q) of hash rows within ``radius`` on any family / orientation / crop window,
+    and the pairs found only by a crop window up to :data:`WINDOW_EXTRA_RADIUS` bits further."""
     n = len(h)
-    found = []
     # Only the difference and DCT hashes generate candidates. This loses no pair that
     # scoring keeps: a kept pair has its DCT hash within the radius under some alignment
     # (found by the DCT, rotation and crop queries below), or 3 of the 4 structural families
     # within the radius, and 3 of 4 always include the difference or the DCT hash. The
     # coarse average and wavelet hashes put most look-alike skin photographs within a few
     # bits of each other, so searching on them grows the candidate set roughly with n**2.
+    found = []  # keys of the pairs within the radius
     for family in CANDIDATE_FAMILIES:
         i, j, _ = radius_pairs(_codes(h, family), radius, workers=workers)
-        found.append((i, j))
+        found.append(_pair_keys(i, j, n))
     phash = _codes(h, "phash")
-    turned = np.concatenate([_codes(h, f"phash_t{t}") for t in range(1, 8)])
-    owner = np.tile(np.arange(n, dtype=np.int64), 7)
-    i, j, _ = radius_query(turned, phash, radius, workers=workers)
-    found.append((owner[i], j))
+    turned = [_codes(h, f"phash_t{t}") for t in range(1, 8)]
+    i, j, _ = radius_query(np.concatenate(turned), phash, radius, workers=workers)
+    found.append(_pair_keys(i % n, j, n))
     crops, crop_owner = _crop_table(h)
+    wide = []
     if crops.size:
-        # a crop window of one image against any rotation/flip of the other (crop + rotation);
-        # the index is built on the windows (69 per image) and the 8 codes per image look them
-        # up: the same pairs as the other way round, 2.7 times faster on a 5,000-image demo
-        every_turn = np.concatenate([phash, turned])
-        i, j, _ = radius_query(every_turn, crops, radius + WINDOW_EXTRA_RADIUS, workers=workers)
-        found.append((crop_owner[j], i % n))
-    a = np.concatenate([f[0] for f in found])
-    b = np.concatenate([f[1] for f in found])
-    keep = a != b
-    lo, hi = np.minimum(a[keep], b[keep]), np.maximum(a[keep], b[keep])
-    key = np.unique(lo * n + hi)
-    return np.stack([key // n, key % n], axis=1) if key.size else np.zeros((0, 2), np.int64)
+        # a crop window of one image against any rotation/flip of the other (crop + rotation).
+        # The index is built on the windows (69 per image) and the whole-image codes look them
+        # up (2.7 times faster than the other way round on a 5,000-image demo), one rotation/flip
+        # at a time so that the raw hits of a 100,000-image collection stay small
+        for codes in [phash, *turned]:
+            i, j, d = radius_query(codes, crops, radius + WINDOW_EXTRA_RADIUS, workers=workers)
+            near = d <= radius
+            found.append(_pair_keys(crop_owner[j[near]], i[near], n))
+            wide.append(_pair_keys(crop_owner[j[~near]], i[~near], n))
+    key = np.unique(np.concatenate(found))
+    wide = np.setdiff1d(np.unique(np.concatenate(wide)), key, assume_unique=True) if wide else key[:0]
+    return tuple(np.stack([k // n, k % n], axis=1) for k in (key, wide))
 
 
 def _crop_window_table(h: pd.DataFrame) -> np.ndarray | None:
@@ -420,16 +427,37 @@ def _best_possible(pairs: pd.DataFrame, limit: int | None, checks: int) -> pd.Da
     return pairs[keep]
 
 
-def _score_in_chunks(h: pd.DataFrame, pq: np.ndarray, radius: int, limit: int | None, checks: int) -> pd.DataFrame:
+def _score_in_chunks(h: pd.DataFrame, pq: np.ndarray, wide: np.ndarray, radius: int, limit: int | None,
+                     checks: int) -> pd.DataFrame:
     """:func:`_best_possible` of :func:`_score_hash_pairs` over all of ``pq``, scored
-    :data:`SCORE_CHUNK_PAIRS` at a time. The same pairs come out: within a chunk a pair ranks
-    no lower than among all pairs (same order, fewer rivals), so what a chunk drops the
-    whole would drop too."""
+    :data:`SCORE_CHUNK_PAIRS` at a time, and over the ``wide`` pairs (found only by a crop
+    window beyond ``radius``) that may be worth the crop check.
+
+    The same pairs come out as from one pass: within a chunk a pair ranks no lower than
+    among all pairs (same order, fewer rivals), so what a chunk drops the whole would drop
+    too. A wide pair is at least ``radius + 1`` bits from its closest alignment, so it can be
+    among the ``checks`` pairs of a content worth the crop check (:func:`worth_checking`)
+    only when that content has fewer than ``checks`` ``possible`` pairs within ``radius``;
+    the others are not scored (a 100,000-image demo has several times more wide pairs than
+    pairs within the radius). With ``limit`` None every wide pair is scored.
+    """
     table = _crop_window_table(h)
     parts = []
-    for start in range(0, len(pq), SCORE_CHUNK_PAIRS):
-        chunk = _score_hash_pairs(h, pq[start:start + SCORE_CHUNK_PAIRS], radius, table)
-        parts.append(_best_possible(chunk, limit, checks))
+    within = np.zeros(len(h), np.int64)  # per content: possible pairs within the radius
+
+    def score(pairs):
+        for start in range(0, len(pairs), SCORE_CHUNK_PAIRS):
+            chunk = _score_hash_pairs(h, pairs[start:start + SCORE_CHUNK_PAIRS], radius, table)
+            close = chunk[(chunk["verdict"].to_numpy() == "possible")
+                          & (np.minimum(chunk["d_crop"], chunk["d_phash"]).to_numpy() <= radius)]
+            np.add.at(within, close["p"].to_numpy(), 1)
+            np.add.at(within, close["q"].to_numpy(), 1)
+            parts.append(_best_possible(chunk, limit, checks))
+
+    score(pq)
+    if len(wide) and (limit is None or checks):
+        few = within < checks
+        score(wide if limit is None else wide[few[wide[:, 0]] | few[wide[:, 1]]])
     if len(parts) == 1:
         return parts[0]
     return _best_possible(pd.concat(parts, ignore_index=True), limit, checks)
@@ -523,9 +551,10 @@ def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DE
         exact["d_dhash"] = exact["d_dhash"].astype("Int64")
         parts.append(exact)
     if len(h) >= 2:
-        pq = _candidate_hash_pairs(h, radius, workers)
-        if len(pq):
-            parts.append(_expand_to_images(_score_in_chunks(h, pq, radius, max_possible, max_checks), members))
+        pq, wide = _candidate_hash_pairs(h, radius, workers)
+        if len(pq) or len(wide):
+            parts.append(_expand_to_images(_score_in_chunks(h, pq, wide, radius, max_possible, max_checks),
+                                           members))
     if not parts:
         return _empty_pairs()
     x = pd.concat(parts, ignore_index=True)

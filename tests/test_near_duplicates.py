@@ -291,14 +291,18 @@ def _flip_bits(rng, code, n_bits):
     return np.uint64(int(code) ^ mask)
 
 
-def _clustered_hash_frame(seed, n_clusters=25, size=6):
-    """Hash rows in clusters: each family of each member moved 0-12 bits from its cluster's codes."""
+def _clustered_hash_frame(seed, n_clusters=25, size=6, windows_of_phash=False):
+    """Hash rows in clusters: each family of each member moved 0-12 bits from its cluster's codes
+    (with ``windows_of_phash`` the first crop window's code moves from the cluster's DCT hash,
+    so windows of one member meet the DCT hash of another, some 9-10 bits apart)."""
     rng = np.random.default_rng(seed)
     families = ["ahash", "dhash", "phash", "whash", "colorhash"] + [f"phash_t{t}" for t in range(1, 8)]
     rows = []
     for c in range(n_clusters):
         base = {f: np.uint64(rng.integers(0, 2**63)) for f in families}
         base_crops = rng.integers(0, 2**63, size=4).astype(np.uint64)
+        if windows_of_phash:
+            base_crops[0] = base["phash"]
         for m in range(size):
             row = {f: _flip_bits(rng, base[f], int(rng.integers(0, 13))) for f in families}
             row["phash_t0"] = row["phash"]
@@ -368,6 +372,25 @@ def test_the_cap_keeps_every_pair_the_crop_check_would_choose():
     kept = chosen[key].merge(capped[key], how="left", indicator=True)["_merge"]
     assert kept.eq("both").all()
     assert len(capped) < len(every)
+
+
+@pytest.mark.parametrize("seed", range(2))
+def test_pairs_found_only_beyond_the_radius_are_kept_when_worth_checking(seed):
+    # reference: every candidate scored (max_possible=None), the crop check's choice among them
+    from curate.near_duplicates import worth_checking
+
+    catalog, hashes = _clustered_hash_frame(seed, n_clusters=6, size=14, windows_of_phash=True)
+    every = score_pairs(catalog, hashes, radius=8, max_possible=None)
+    closest = np.minimum(every["d_crop"], every["d_phash"].astype(float))
+    beyond = every[every["d_crop"].between(9, 10) & (every["d_phash"] > 8)]
+    chosen = every[worth_checking(every["image_a"], every["image_b"], every["verdict"], every["d_crop"],
+                                  every["d_phash"], every["score"], per_image=3)]
+    assert ((closest[chosen.index] > 8) & chosen.index.isin(beyond.index)).any()  # some chosen lie beyond
+    capped = score_pairs(catalog, hashes, radius=8, max_possible=1, max_checks=3)
+    key = ["image_a", "image_b"]
+    assert chosen[key].merge(capped[key], how="left", indicator=True)["_merge"].eq("both").all()
+    # and most pairs beyond the radius were not worth scoring
+    assert beyond[key].merge(capped[key], how="left", indicator=True)["_merge"].eq("left_only").mean() > 0.5
 
 
 @pytest.mark.parametrize("chunk", [7, 30])
