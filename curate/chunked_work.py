@@ -46,8 +46,9 @@ def run_chunks(func, items, *, workers: int, client=None, progress: bool = True,
     finishes, with a progress bar.
 
     Chunks hold at most ``chunk_size`` items, fewer so that each worker gets about 4,
-    and the last ones fewer still (see :func:`_chunks`), so no core idles at the end. With a ``dask.distributed.Client``
-    the chunks run on its cluster; with one worker or one chunk, in this process.
+    and the last ones fewer still (see :func:`_chunks`), so no core idles at the end.
+    With a ``dask.distributed.Client`` the chunks run on its cluster; with one worker
+    or one chunk, in this process.
 
     >>> list(run_chunks(list, range(5), workers=1, progress=False, chunk_size=2))
     [[0, 1], [2, 3], [4]]

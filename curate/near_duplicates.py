@@ -384,11 +384,15 @@ def worth_checking(end_a, end_b, verdict, d_crop, d_phash, score, *, max_distanc
 
     Examples
     --------
-    End 0 has three close pairs; the farthest is no one's closest:
+    One per end: end 0's best is its first pair, but each of ends 1, 2 and 3 has its own
+    best among the others; the ``near`` pair is never checked:
 
     >>> worth_checking([0, 0, 0, 1], [1, 2, 3, 2], ["possible"] * 3 + ["near"], [2, 4, 6, 0],
     ...                [30, 30, 30, 0], [0.5] * 4, per_image=1).tolist()
     [True, True, True, False]
+
+    No limit per end, but at most ``max_distance`` (10) bits:
+
     >>> worth_checking([0, 0, 0], [1, 1, 1], ["possible"] * 3, [2, 4, 11], [30, 30, 30], [0.5] * 3,
     ...                per_image=None).tolist()
     [True, True, False]
