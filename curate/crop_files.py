@@ -19,14 +19,13 @@ import numpy as np
 import pandas as pd
 
 from curate.hashing import INVERSE_ORIENTATION
-from curate.near_duplicates import MAX_CHECK_DISTANCE, worth_checking
-from curate.near_duplicates import MAX_CHECKS_PER_IMAGE as _PER_IMAGE
+from curate.near_duplicates import MAX_CHECK_DISTANCE as MAX_CHECK_D_CROP
+from curate.near_duplicates import MAX_CHECKS_PER_IMAGE, worth_checking
 
 __all__ = ["pairs_to_check", "upgrade_crop_pairs", "check_chunk", "MAX_CHECK_D_CROP", "MAX_CHECKS_PER_IMAGE", "EVIDENCE_COLUMNS"]
 
-#: Which ``possible`` pairs are checked: see :func:`curate.near_duplicates.worth_checking`.
-MAX_CHECK_D_CROP = MAX_CHECK_DISTANCE
-MAX_CHECKS_PER_IMAGE = _PER_IMAGE
+# Which ``possible`` pairs are checked (MAX_CHECK_D_CROP, MAX_CHECKS_PER_IMAGE, imported above):
+# see curate.near_duplicates.worth_checking.
 #: Version of the answers of :func:`check_chunk` (the decode, :func:`curate.crop_check.check_crop`
 #: and its constants, the second look with filled surrounds). Cached answers of another version
 #: are not used (:mod:`curate.crop_check_store`): bump it whenever any of those changes.
@@ -135,17 +134,14 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
     from curate.chunked_work import resolve_workers, run_chunks
 
     out = pairs.copy()
-    out["crop_checked"] = 0
-    for c in EVIDENCE_COLUMNS[1:]:
-        out[c] = np.nan
+    checked = np.zeros(len(out), bool)
+    confirmed = np.zeros(len(out), bool)
+    evidence = np.full((len(out), 4), np.nan)  # ncc, scale, orientation, agreeing
     todo = np.flatnonzero(pairs_to_check(out, max_d_crop=max_d_crop)) if len(out) else np.zeros(0, int)
     out.attrs["crop_checked"] = int(todo.size)
     out.attrs["crop_cached"] = 0
     if not todo.size:
-        return out
-    checked = np.zeros(len(out), bool)
-    confirmed = np.zeros(len(out), bool)
-    evidence = np.full((len(out), 4), np.nan)  # ncc, scale, orientation, agreeing
+        return _with_evidence(out, checked, confirmed, evidence)
 
     def take(k, m):
         if m is not None:  # None: a file is unreadable now, the pair stays as it was
@@ -178,13 +174,19 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
         from curate.crop_check_store import store_checks
 
         store_checks(cache, answers, CHECK_VERSION)
-    # set once at the end: a cell at a time through pandas costs more than the check itself
+    return _with_evidence(out, checked, confirmed, evidence)
+
+
+def _with_evidence(out: pd.DataFrame, checked, confirmed, evidence) -> pd.DataFrame:
+    """``out`` with the evidence columns and the upgraded verdicts, set once (a cell at a time
+    through pandas costs more than the check itself)."""
     out["crop_checked"] = checked.astype(np.int64)
     for j, c in enumerate(EVIDENCE_COLUMNS[1:]):
         out[c] = evidence[:, j]
-    scale = evidence[:, 1]
-    out["verdict"] = np.where(confirmed, "near", out["verdict"].to_numpy(object))
-    out["crop"] = np.where(confirmed, (scale < WHOLE_PICTURE_SCALE).astype(np.int64), out["crop"].to_numpy())
+    if confirmed.any():
+        scale = evidence[:, 1]
+        out["verdict"] = np.where(confirmed, "near", out["verdict"].to_numpy(object))
+        out["crop"] = np.where(confirmed, (scale < WHOLE_PICTURE_SCALE).astype(np.int64), out["crop"].to_numpy())
     return out
 
 

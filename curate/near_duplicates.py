@@ -401,7 +401,8 @@ def worth_checking(end_a, end_b, verdict, d_crop, d_phash, score, *, max_distanc
         return pd.to_numeric(pd.Series(values), errors="coerce").fillna(64).to_numpy(float)
 
     closest = np.minimum(bits(d_crop), bits(d_phash))
-    todo = (np.asarray(verdict, dtype=object) == "possible") & (closest <= max_distance)
+    # compared by pandas: an Arrow-backed string column is not copied into Python objects
+    todo = pd.Series(verdict).eq("possible").to_numpy(dtype=bool) & (closest <= max_distance)
     if per_image is None or not todo.any():
         return todo
     rows = np.flatnonzero(todo)
