@@ -6,7 +6,8 @@ opens files. The file layer is :mod:`curate.crop_files`.
 How a pair is checked:
 
 1. Both images are made grey and reduced (:data:`WORK_SIDE` pixels on the long
-   side for the fine search, :data:`COARSE_SIDE` for the coarse one).
+   side for the fine search, never enlarged: a smaller picture keeps its own size;
+   :data:`COARSE_SIDE` for the coarse one).
 2. **Alignment.** Each image in turn plays the crop ("template") and the other the
    original. The template, in each of the 8 rotations/flips
    (:data:`curate.hashing.DIHEDRAL_TRANSFORMS` order), is scaled so that its width
@@ -398,7 +399,9 @@ def check_crop(image_a: Image.Image, image_b: Image.Image) -> CropMatch:
     rough = Image.fromarray(np.clip(_turn(coarse[crop_i], t), 0, 255).astype(np.uint8))
     if w == 0 or average_hash(piece) - average_hash(rough) > COARSE_MAX_AHASH:
         return _stopped(crop_i, t, f0, coarse_ncc)
-    fine = [_grey(luma[0], WORK_SIDE), _grey(luma[1], WORK_SIDE)]
+    # never enlarged: an enlarged crop is resampled twice (up, then to the template's width),
+    # and the blur cost a 107-pixel crop of a 150-pixel picture 0.02 of NCC (0.939 vs 0.956)
+    fine = [_grey(l, min(WORK_SIDE, max(l.size))) for l in luma]
     original = fine[1 - crop_i]
     search = _Placements(fine[crop_i], original)
     ncc, f, x, y, w, h = search.best([(t, f0 + FINE_STEPS)])[0]

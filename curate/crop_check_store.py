@@ -3,7 +3,7 @@
 The crop check (:mod:`curate.crop_check`) looks at pixels only, so its answer for two
 files depends on their contents alone. The pairs step, the leakage check and a
 training script's repeated checks of the same manifest ask about many of the same
-pairs; each pair is checked once per :data:`curate.crop_check.CHECK_VERSION` and
+pairs; each pair is checked once per :data:`curate.crop_files.CHECK_VERSION` and
 read back after that.
 
 A row holds the pair in digest order (``sha_a < sha_b``); the orientation stored is

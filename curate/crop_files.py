@@ -29,7 +29,7 @@ __all__ = ["pairs_to_check", "upgrade_crop_pairs", "check_chunk", "MAX_CHECK_D_C
 #: Version of the answers of :func:`check_chunk` (the decode, :func:`curate.crop_check.check_crop`
 #: and its constants, the second look with filled surrounds). Cached answers of another version
 #: are not used (:mod:`curate.crop_check_store`): bump it whenever any of those changes.
-CHECK_VERSION = 1
+CHECK_VERSION = 2
 #: A confirmed alignment covering at least this share of the original's width is the whole
 #: picture (turned or flipped), not a crop: the pair becomes ``near`` with ``crop = 0``.
 WHOLE_PICTURE_SCALE = 0.97
@@ -221,6 +221,9 @@ def check_chunk(items) -> list[tuple]:
         if m.confirmed and m.scale >= WHOLE_PICTURE_SCALE:
             # a whole dermoscopic picture lines up with another through their shared round
             # field of view; with the surrounds filled the skin and lesion must line up too
+            # (at one size: surrounds found on two pixel grids differ along the rim, and a
+            # 68-pixel copy of a 128-pixel picture then failed the second look)
+            a, b = _at_one_size(a, b)
             filled_a, filled_b = fill_surround(a), fill_surround(b)
             if filled_a is not a or filled_b is not b:
                 if not check_crop(filled_a, filled_b).confirmed:
@@ -230,3 +233,19 @@ def check_chunk(items) -> list[tuple]:
         turn = INVERSE_ORIENTATION[m.orientation] if m.crop_is_a else m.orientation
         out.append((k, (bool(m.confirmed), m.ncc, m.scale, int(turn), m.agreeing)))
     return out
+
+
+def _at_one_size(a, b):
+    """The two pictures with the larger one reduced to the smaller one's long side (a picture
+    already that small is returned as it is)."""
+    from PIL import Image
+
+    side = min(max(a.size), max(b.size))
+
+    def reduced(p):
+        f = side / max(p.size)
+        if f >= 1:
+            return p
+        return p.resize((max(1, round(p.width * f)), max(1, round(p.height * f))), Image.Resampling.LANCZOS)
+
+    return reduced(a), reduced(b)

@@ -176,7 +176,7 @@ DROP INDEX images_sha256;
 CREATE TABLE crop_checks (
     sha_a         TEXT NOT NULL,          -- sha_a < sha_b
     sha_b         TEXT NOT NULL,
-    check_version INTEGER NOT NULL,       -- curate.crop_check.CHECK_VERSION; others are checked again
+    check_version INTEGER NOT NULL,       -- curate.crop_files.CHECK_VERSION; others are checked again
     confirmed     INTEGER NOT NULL,       -- 0/1
     ncc           REAL,
     scale         REAL,
