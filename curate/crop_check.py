@@ -6,7 +6,7 @@ opens files. The file layer is :mod:`curate.crop_files`.
 How a pair is checked:
 
 1. Both images are made grey and reduced (:data:`WORK_SIDE` pixels on the long
-   side for the fine search, never enlarged: a smaller picture keeps its own size;
+   side for the fine search, where a smaller crop of a larger original keeps its own size;
    :data:`COARSE_SIDE` for the coarse one).
 2. **Alignment.** Each image in turn plays the crop ("template") and the other the
    original. The template, in each of the 8 rotations/flips
@@ -399,9 +399,13 @@ def check_crop(image_a: Image.Image, image_b: Image.Image) -> CropMatch:
     rough = Image.fromarray(np.clip(_turn(coarse[crop_i], t), 0, 255).astype(np.uint8))
     if w == 0 or average_hash(piece) - average_hash(rough) > COARSE_MAX_AHASH:
         return _stopped(crop_i, t, f0, coarse_ncc)
-    # never enlarged: an enlarged crop is resampled twice (up, then to the template's width),
-    # and the blur cost a 107-pixel crop of a 150-pixel picture 0.02 of NCC (0.939 vs 0.956)
-    fine = [_grey(l, min(WORK_SIDE, max(l.size))) for l in luma]
+    # both sides resampled alike: where the original is reduced to WORK_SIDE, a smaller crop is
+    # not enlarged first (its templates are then resized from it once): a 107-pixel crop of a
+    # 150-pixel picture, enlarged first, lost 0.02 of NCC (0.939 vs 0.956). Where the original
+    # is enlarged too, both carry the same blur: a star-field crop (scikit-image's
+    # hubble_deep_field) scored 0.956 enlarged and 0.946 not.
+    crop_side = WORK_SIDE if max(luma[1 - crop_i].size) <= WORK_SIDE else min(WORK_SIDE, max(luma[crop_i].size))
+    fine = [_grey(l, crop_side if i == crop_i else WORK_SIDE) for i, l in enumerate(luma)]
     original = fine[1 - crop_i]
     search = _Placements(fine[crop_i], original)
     ncc, f, x, y, w, h = search.best([(t, f0 + FINE_STEPS)])[0]

@@ -29,7 +29,7 @@ __all__ = ["pairs_to_check", "upgrade_crop_pairs", "check_chunk", "MAX_CHECK_D_C
 #: Version of the answers of :func:`check_chunk` (the decode, :func:`curate.crop_check.check_crop`
 #: and its constants, the second look with filled surrounds). Cached answers of another version
 #: are not used (:mod:`curate.crop_check_store`): bump it whenever any of those changes.
-CHECK_VERSION = 2
+CHECK_VERSION = 3
 #: A confirmed alignment covering at least this share of the original's width is the whole
 #: picture (turned or flipped), not a crop: the pair becomes ``near`` with ``crop = 0``.
 WHOLE_PICTURE_SCALE = 0.97

@@ -150,10 +150,6 @@ def test_every_copy_of_a_whole_image_transform_is_found(copies_found):
         assert all(copies_found[kind]), (kind, copies_found[kind])
 
 
-@pytest.mark.xfail(strict=False, reason=(
-    "crops found as candidates are now confirmed near by the crop check, but some combination "
-    "copies (crop + turn + resize + colour) are not candidates at all or stay 'possible', "
-    "which is not counted as a leak"))
 def test_every_planted_kind_is_found_including_crops(copies_found):
     missed = {k: v for k, v in copies_found.items() if not all(v)}
     assert not missed, missed
