@@ -34,10 +34,13 @@ import pandas as pd
 from curate.errors import LeakageError
 from curate.file_probe import copy_digests
 from curate.grouping import is_placeholder_id
+from curate.hashing import INVERSE_ORIENTATION
 from curate.manifest_table import standard_columns
 from curate.report import Finding, LeakReason, Report
 
 #: columns of :meth:`LeakageReport.to_frame`, one row per leak
+#: Evidence columns of a near-duplicate pair holding the code that turns image b onto image a.
+ORIENTATION_EVIDENCE = ("orientation", "crop_orientation")
 LEAK_COLUMNS = ["kind", "path_a", "split_a", "path_b", "split_b", "value", "distance", "evidence"]
 
 #: order in which kinds are listed
@@ -436,6 +439,12 @@ def _pair_leaks(t: pd.DataFrame, pairs: pd.DataFrame, order: list[str]) -> pd.Da
     swap = p["split_a"].map(rank) > p["split_b"].map(rank)
     for a, b in (("path_a", "path_b"), ("split_a", "split_b")):
         p.loc[swap, [a, b]] = p.loc[swap, [b, a]].to_numpy()
+    # an orientation turns image b onto image a: with the two swapped it is undone the other way
+    for column in ORIENTATION_EVIDENCE:
+        if column in p.columns:
+            turned = swap & p[column].notna()
+            p[column] = p[column].astype(object)
+            p.loc[turned, column] = [INVERSE_ORIENTATION[int(o)] for o in p.loc[turned, column]]
     extra = [c for c in p.columns if c not in ("path_a", "path_b", "split_a", "split_b", "distance")]
     evidence = []
     for row in p[extra].to_dict("records"):

@@ -182,6 +182,18 @@ def conflict_of(label_a, label_b, patient_a, patient_b) -> pd.Series:
     return pd.Series(out, dtype=object)
 
 
+def pair_conflicts(catalog: pd.DataFrame, image_a, image_b) -> np.ndarray:
+    """:func:`conflict_of` for pairs of catalog images by ``image_id`` (its ``label`` and
+    ``patient_id`` columns; a missing column conflicts with nothing)."""
+    meta = catalog.set_index("image_id")
+
+    def column(name, ids):
+        return meta[name].reindex(ids).to_numpy() if name in meta.columns else [None] * len(ids)
+
+    return conflict_of(column("label", image_a), column("label", image_b),
+                       column("patient_id", image_a), column("patient_id", image_b)).to_numpy()
+
+
 def _check_frames(catalog: pd.DataFrame, hashes: pd.DataFrame) -> None:
     if not isinstance(catalog, pd.DataFrame) or not isinstance(hashes, pd.DataFrame):
         raise TypeError("catalog and hashes must be pandas DataFrames")
@@ -569,12 +581,7 @@ def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DE
     # where ia is image a the inverse transform is stored (quarter turns differ from theirs)
     x["orientation"] = np.where(x["ia"] < x["ib"], np.asarray(INVERSE_ORIENTATION)[x["orientation"]],
                                 x["orientation"])
-    meta = catalog.set_index("image_id")
-    def col(name, ids):
-        return meta[name].reindex(ids).to_numpy() if name in meta.columns else [None] * len(ids)
-    conflict = conflict_of(col("label", x["image_a"]), col("label", x["image_b"]),
-                           col("patient_id", x["image_a"]), col("patient_id", x["image_b"]))
-    x["conflict"] = pd.Series(conflict.to_numpy(), index=x.index, dtype=object)
+    x["conflict"] = pd.Series(pair_conflicts(catalog, x["image_a"], x["image_b"]), index=x.index, dtype=object)
     x = x[PAIR_COLUMNS].sort_values(["score", "image_a", "image_b"], ascending=[False, True, True],
                                     kind="stable")
     return x.reset_index(drop=True)

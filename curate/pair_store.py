@@ -14,9 +14,10 @@ import numpy as np
 import pandas as pd
 
 from curate.crop_files import upgrade_crop_pairs
-from curate.near_duplicates import DEFAULT_RADIUS, PAIR_COLUMNS, score_pairs
+from curate.near_duplicates import DEFAULT_RADIUS, PAIR_COLUMNS, pair_conflicts, score_pairs
 
-__all__ = ["find_pairs", "load_pairs", "find_near_duplicates", "pairs_for_output", "IMAGE_SUFFIXES"]
+__all__ = ["find_pairs", "load_pairs", "add_found_pairs", "find_near_duplicates", "pairs_for_output",
+           "IMAGE_SUFFIXES"]
 
 #: File name endings treated as images when a folder is given.
 IMAGE_SUFFIXES = (".jpg", ".jpeg", ".png", ".tif", ".tiff", ".bmp", ".webp", ".gif")
@@ -84,6 +85,71 @@ def find_pairs(ws, *, radius: int = DEFAULT_RADIUS, workers: int | None = None,
     out = _with_paths(pairs, catalog)
     out.attrs.update(crop_checked=pairs.attrs.get("crop_checked", 0), crop_cached=pairs.attrs.get("crop_cached", 0))
     return out
+
+
+def add_found_pairs(ws, leaks: pd.DataFrame) -> int:
+    """Store the near-duplicate pairs a leakage check found as ``near`` pairs of the workspace.
+
+    The check looks at pairs across splits with its own budget of crop checks, so it
+    can confirm copies that :func:`find_pairs` left ``possible`` or never kept. Stored,
+    they join leakage groups like any other ``near`` pair (the next
+    :func:`curate.split_store.build_groups` or :func:`curate.split_store.mend_split`).
+    A pair already in table ``pairs`` is replaced. Running :func:`find_pairs` again
+    replaces the whole table, these pairs included.
+
+    Parameters
+    ----------
+    ws : Workspace
+    leaks : DataFrame
+        :attr:`curate.leakage.LeakageReport.leaks` (or its ``to_frame()``) of a check
+        of this workspace's images; only rows of kind ``near_duplicate`` are used,
+        with the engine's columns (``d_phash``, ``score`` ...) from ``evidence``.
+
+    Returns
+    -------
+    int
+        Pairs stored.
+
+    Raises
+    ------
+    ValueError
+        A pair names a file that is not in the workspace's catalog (the first such
+        path is named); nothing is stored then.
+    """
+    import json
+
+    from curate.hashing import INVERSE_ORIENTATION
+
+    near = leaks[leaks["kind"] == "near_duplicate"]
+    if near.empty:
+        return 0
+    catalog = ws.catalog()
+    id_of = pd.Series(catalog["image_id"].to_numpy(), index=catalog["path"].to_numpy())
+    a, b = near["path_a"].map(id_of), near["path_b"].map(id_of)
+    unknown = a.isna() | b.isna()
+    if unknown.any():
+        row = near[unknown].iloc[0]
+        path = row["path_a"] if pd.isna(a[unknown].iloc[0]) else row["path_b"]
+        raise ValueError(f"{int(unknown.sum())} found pair(s) name files that are not in the catalog of "
+                         f"{ws.path}, for example {path}; nothing was stored")
+    evidence = pd.DataFrame([json.loads(e) if isinstance(e, str) else dict(e or {}) for e in near["evidence"]])
+    a, b = a.to_numpy(np.int64), b.to_numpy(np.int64)
+    rows = pd.DataFrame({"image_a": np.minimum(a, b), "image_b": np.maximum(a, b)})
+    for column in PAIR_COLUMNS[2:]:
+        rows[column] = evidence[column].to_numpy(object) if column in evidence.columns else None
+    rows["d_phash"] = rows["d_phash"].where(rows["d_phash"].notna(), near["distance"].to_numpy(object))
+    swapped = (a > b) & rows["orientation"].notna().to_numpy()
+    rows.loc[swapped, "orientation"] = [INVERSE_ORIENTATION[int(o)] for o in rows.loc[swapped, "orientation"]]
+    rows["crop"] = rows["crop"].fillna(0)
+    rows["score"] = rows["score"].fillna(0.0)
+    rows["verdict"] = rows["verdict"].fillna("near")
+    rows["conflict"] = pair_conflicts(catalog, rows["image_a"], rows["image_b"])
+    rows = rows.drop_duplicates(["image_a", "image_b"])
+    values = [tuple(_sql_value(v) for v in rec) for rec in rows[PAIR_COLUMNS].itertuples(index=False)]
+    with ws.transaction() as con:
+        con.executemany(f"INSERT OR REPLACE INTO pairs({', '.join(PAIR_COLUMNS)}) "
+                        f"VALUES ({', '.join('?' * len(PAIR_COLUMNS))})", values)
+    return len(values)
 
 
 def load_pairs(ws) -> pd.DataFrame:

@@ -209,17 +209,42 @@ def propose_demo_split(ctx: PipelineContext) -> dict:
     return {"images": _counts(assignment.splits), "findings": assignment.report.counts()}
 
 
+#: How many times the check step may check the split; after each check but the last, the
+#: near-duplicates it found are joined and the split mended.
+CHECK_ROUNDS = 3
+
+
 def check_split_leakage(ctx: PipelineContext) -> dict:
-    """Independent leakage check of the split (shared files, near-duplicates, patients, lesions)."""
+    """Independent leakage check of the split (shared files, near-duplicates, patients, lesions).
+
+    The check spends its crop checks on pairs across splits, so it can confirm copies
+    the pairs step left unsure. Those are stored as pairs (:func:`curate.pair_store.add_found_pairs`),
+    the split is mended around them (:func:`curate.split_store.mend_split`) and
+    checked again, at most :data:`CHECK_ROUNDS` times. Only a clean last check lets the
+    split be frozen; any other kind of leak ends the rounds.
+    """
     from curate.freeze import workspace_split_table
     from curate.leakage_check import check_leakage
+    from curate.pair_store import add_found_pairs
+    from curate.split_store import mend_split
 
-    table = workspace_split_table(ctx.workspace)
-    table = table[["path", "split", "patient_id", "lesion_id", "sha256", "source"]]
-    report = check_leakage(table, root="/", cache=ctx.workspace.path,
-                           patient_scope="source", lesion_scope="source", progress=ctx.progress)
+    joined = moved = 0
+    for round_number in range(1, CHECK_ROUNDS + 1):
+        table = workspace_split_table(ctx.workspace)
+        table = table[["path", "split", "patient_id", "lesion_id", "sha256", "source"]]
+        report = check_leakage(table, root="/", cache=ctx.workspace.path,
+                               patient_scope="source", lesion_scope="source", progress=ctx.progress)
+        kinds = set(report.counts())
+        if report.ok or kinds != {"near_duplicate"} or round_number == CHECK_ROUNDS:
+            break
+        added = add_found_pairs(ctx.workspace, report.leaks)
+        _, changed = mend_split(ctx.workspace, taxonomy=ctx.taxonomy)
+        joined, moved = joined + added, moved + changed
+        ctx.echo(f"  check {round_number}: {added} near-duplicate pairs across splits that the pairs "
+                 f"step had not joined; joined them and moved {changed} images")
     ctx.leak_free = report.ok
-    return {"images": report.n_images, "leaks": report.counts()}
+    return {"images": report.n_images, "leaks": report.counts(), "checks": round_number,
+            "pairs_joined_from_checks": joined, "images_moved": moved}
 
 
 def freeze_demo_split(ctx: PipelineContext) -> dict:

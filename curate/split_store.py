@@ -195,7 +195,7 @@ def split_workspace(
     names=None,
     stratify=None,
     random_state=0,
-    keep: str | os.PathLike | None = None,
+    keep: str | os.PathLike | pd.Series | None = None,
     taxonomy=None,
     group_options: dict | None = None,
 ) -> SplitAssignment:
@@ -204,7 +204,8 @@ def split_workspace(
     Groups are rebuilt first (with ``group_options``, or else the options of the
     last :func:`build_groups` run), so new pairs and decisions count. ``stratify`` takes catalog columns (``source``, ``modality`` ...),
     ``node``, ``training_class``, ``ita_bin``, and ``node:DEPTH`` for the taxonomy
-    ancestor at that depth. ``keep`` is a manifest whose assignments must not move.
+    ancestor at that depth. ``keep`` is a manifest whose assignments must not move, or
+    a Series of split names by ``image_id`` (as :func:`mend_split` passes).
     """
     if ws.catalog().empty:
         raise ValueError(f"{ws.path}: the catalog is empty; run `curate scan` first")
@@ -214,15 +215,19 @@ def split_workspace(
     catalog = split_catalog(ws)
     catalog, columns = _stratify_columns(catalog, stratify, ws, taxonomy)
     locked, keep_counts = (None, None)
-    if keep is not None:
+    if isinstance(keep, pd.Series):
+        locked, keep_counts = keep, {"kept_from": "the previous split", "rows": int(len(keep))}
+    elif keep is not None:
         locked, keep_counts = read_keep_manifest(keep, catalog)
+    if keep is not None:
         _, effective = check_fractions(fractions, names)
         strange = sorted(set(locked) - set(effective))
         if strange:
             raise ValueError(f"{keep}: split(s) {strange} are not among the split names {list(effective)}")
     assignment = propose_split(catalog, fractions=fractions, names=names, stratify=columns,
                                keep=locked, random_state=random_state)
-    parameters = dict(assignment.parameters, keep=None if keep is None else str(keep),
+    kept = "previous split" if isinstance(keep, pd.Series) else keep
+    parameters = dict(assignment.parameters, keep=None if kept is None else str(kept),
                       keep_rows=keep_counts, group_parameters=stored_group_options(ws),
                       images=len(assignment.splits),
                       created_at=utc_now())
@@ -236,3 +241,41 @@ def split_workspace(
         con.execute("INSERT OR REPLACE INTO meta(key, value) VALUES (?, ?)",
                     (SPLIT_META_KEY, json.dumps(parameters, sort_keys=True, default=str)))
     return assignment
+
+
+def mend_split(ws: Workspace, *, taxonomy=None) -> tuple[SplitAssignment, int]:
+    """Bring the stored split up to date with new pairs, decisions and images, moving as few
+    images as possible.
+
+    Groups are rebuilt (options of the last :func:`build_groups`). Every image whose
+    group still sits in one split keeps it; the images of groups that now span
+    splits (joined by a new pair or decision), and images without a split yet, are
+    placed by the same optimiser, with the fractions, names, stratification and seed
+    of the stored split.
+
+    Returns
+    -------
+    SplitAssignment, int
+        The new split (also stored, as :func:`split_workspace` does) and how many
+        images changed split.
+
+    Raises
+    ------
+    ValueError
+        The workspace has no stored split to mend.
+    """
+    record = ws.get_meta(SPLIT_META_KEY)
+    current = ws.read_sql("SELECT image_id, split FROM splits").set_index("image_id")["split"]
+    if record is None or current.empty:
+        raise ValueError(f"{ws.path}: no split to mend; propose one first (`curate split`)")
+    stored = json.loads(record)
+    build_groups(ws, **stored_group_options(ws))
+    groups = ws.read_sql("SELECT image_id, group_id FROM groups").set_index("image_id")["group_id"]
+    current = current[current.index.isin(groups.index)]
+    spans = current.groupby(groups.reindex(current.index)).nunique()
+    torn = groups.reindex(current.index).isin(spans.index[spans > 1])
+    assignment = split_workspace(ws, fractions=stored["fractions"], names=stored["names"],
+                                 stratify=stored["stratify"], random_state=stored["random_state"],
+                                 keep=current[~torn.to_numpy()], taxonomy=taxonomy)
+    moved = assignment.splits.reindex(current.index) != current
+    return assignment, int(moved.sum())

@@ -96,9 +96,10 @@ def test_near_duplicate_pairs_only_across_splits_and_not_when_identical():
     r = find_leaks(t, pairs=pairs)
     f = r.to_frame()
     assert r.counts() == {"near_duplicate": 1}
-    # oriented train -> test, distance and the extra columns kept as evidence
+    # oriented train -> test, distance and the extra columns kept as evidence (the orientation
+    # undone the other way: a quarter turn one way is three the other)
     assert (f["path_a"][0], f["split_a"][0], f["path_b"][0]) == ("a", "train", "b")
-    assert f["distance"][0] == 5 and f["evidence"][0]["orientation"] == 1
+    assert f["distance"][0] == 5 and f["evidence"][0]["orientation"] == 3
     with pytest.raises(ValueError, match="path_a"):
         find_leaks(t, pairs=pd.DataFrame({"a": [1]}))
 
@@ -444,3 +445,30 @@ def test_crop_check_runs_only_on_pairs_that_could_leak(tmp_path):
     assert checked[frozenset(("orig.png", "crop_test.png"))] == 1
     same_split = frozenset(("orig.png", "crop_train.jpg"))
     assert checked[same_split] != 1  # a candidate, but inside one split: not checked
+
+
+@pytest.mark.parametrize("turn", range(8))
+def test_orientation_evidence_follows_the_pair_when_listed_the_other_way(turn):
+    # a leak is listed train first; the orientation (turns image b onto image a) must then be
+    # undone the other way. Reference: Pillow's transposes (curate.hashing.PIL_TRANSPOSE).
+    import numpy as np
+    from PIL import Image
+
+    from curate.hashing import PIL_TRANSPOSE
+
+    def turned(picture, k):
+        return picture if PIL_TRANSPOSE[k] is None else picture.transpose(PIL_TRANSPOSE[k])
+
+    a = Image.fromarray((np.random.default_rng(turn).random((6, 9)) * 255).astype(np.uint8))
+    # b.png: a.png turned so that `turn` turns it back onto a.png
+    b = next(turned(a, k) for k in range(8) if np.array_equal(np.asarray(turned(turned(a, k), turn)), np.asarray(a)))
+    pictures = {"a.png": a, "b.png": b}
+    table = pd.DataFrame({"path": ["a.png", "b.png"], "split": ["test", "train"]})
+    pairs = pd.DataFrame({"path_a": ["a.png"], "path_b": ["b.png"], "distance": [0],
+                          "orientation": [turn], "crop_orientation": [turn]})
+    leak = find_leaks(table, pairs=pairs).to_frame().iloc[0]
+    assert (leak["path_a"], leak["path_b"]) == ("b.png", "a.png")
+    for key in ("orientation", "crop_orientation"):
+        code = leak["evidence"][key]
+        assert np.array_equal(np.asarray(turned(pictures[leak["path_b"]], code)),
+                              np.asarray(pictures[leak["path_a"]])), (key, code)
