@@ -640,32 +640,43 @@ def groups_command(workspace, patient_scope, lesion_scope, link_verdicts, max_id
               help="Breaks ties between groups of equal size; same value, same split.")
 @click.option("--keep", type=click.Path(exists=True),
               help="A frozen manifest (CSV/Parquet with sha256 or path, and split) whose images must not move.")
+@click.option("--mend", is_flag=True,
+              help="Update the stored split instead: only new images and groups that new pairs or decisions "
+              "joined across splits are placed; its fractions, names, stratification and seed are reused.")
 @click.option("--max-rows", type=click.IntRange(min=0), default=20, show_default=True,
               help="Findings to print.")
 @click.option("--plot", type=click.Path(dir_okay=False), help="Write each class's share per split (PNG).")
-def split_command(workspace, fractions, names, stratify, random_state, keep, max_rows, plot) -> int:
+def split_command(workspace, fractions, names, stratify, random_state, keep, mend, max_rows, plot) -> int:
     """Assign whole leakage groups of WORKSPACE to splits, balancing class shares.
 
     Groups are rebuilt first, with the options of the last `curate groups` run,
     so new pairs and review decisions count. With
     --keep, images of the manifest stay in their split, and new images that join
-    one of their groups follow them. Classes with fewer groups than splits are
+    one of their groups follow them. With --mend, the stored split is kept except
+    for new images and groups that now span splits (after a review joined two
+    images, or a leakage check's near-duplicates were added as pairs). Classes with fewer groups than splits are
     reported with where their groups went.
 
     Exit code 1 means findings: classes too small for every split, new images
     joining kept groups, or kept groups spanning two splits.
     """
-    from curate.split_store import split_workspace
+    from curate.split_store import mend_split, split_workspace
     from curate.store import Workspace
 
-    try:
-        fraction_values = [float(x) for x in _comma_list(fractions)]
-    except ValueError:
-        raise click.BadParameter(f"{fractions!r} is not a comma-separated list of numbers",
-                                 param_hint="--fractions") from None
-    assignment = split_workspace(
-        Workspace.open(workspace), fractions=fraction_values, names=_comma_list(names),
-        stratify=_comma_list(stratify), random_state=random_state, keep=keep)
+    if mend:
+        if keep:
+            raise click.UsageError("--mend keeps the stored split; it cannot be combined with --keep")
+        assignment, moved = mend_split(Workspace.open(workspace))
+        click.echo(f"mended the stored split: {moved} image(s) changed split")
+    else:
+        try:
+            fraction_values = [float(x) for x in _comma_list(fractions)]
+        except ValueError:
+            raise click.BadParameter(f"{fractions!r} is not a comma-separated list of numbers",
+                                     param_hint="--fractions") from None
+        assignment = split_workspace(
+            Workspace.open(workspace), fractions=fraction_values, names=_comma_list(names),
+            stratify=_comma_list(stratify), random_state=random_state, keep=keep)
     click.echo(assignment.summary(max_rows))
     if plot:
         from curate.split_plots import plot_split_shares

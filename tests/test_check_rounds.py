@@ -131,3 +131,22 @@ def test_found_pairs_naming_unknown_files_are_refused_whole(mended):
     with pytest.raises(ValueError, match="/nowhere/x.jpg"):
         add_found_pairs(ws, leaks)
     assert len(ws.read_sql("SELECT * FROM pairs")) == n
+
+
+def test_mend_from_the_command_line(mended, tmp_path):
+    from click.testing import CliRunner
+
+    from curate.cli import main
+
+    _, summary = mended
+    ws = summary["workspace"]
+    result = CliRunner().invoke(main, ["split", ws, "--mend"])
+    # nothing new since the last mend: nothing moves
+    assert result.exit_code in (0, 1), result.output
+    assert "mended the stored split: 0 image(s) changed split" in result.output
+    manifest = next((Workspace.open(ws).path / "manifests").glob("*.csv"))
+    result = CliRunner().invoke(main, ["split", ws, "--mend", "--keep", str(manifest)])
+    assert result.exit_code == 2 and "cannot be combined with --keep" in result.output
+    Workspace.create(tmp_path / "empty")
+    result = CliRunner().invoke(main, ["split", str(tmp_path / "empty"), "--mend"])
+    assert result.exit_code == 2 and "no split to mend" in result.output
