@@ -654,8 +654,8 @@ def split_command(workspace, fractions, names, stratify, random_state, keep, men
     --keep, images of the manifest stay in their split, and new images that join
     one of their groups follow them. With --mend, the stored split is kept except
     for new images and groups that now span splits (after a review joined two
-    images, or a leakage check's near-duplicates were added as pairs). Classes with fewer groups than splits are
-    reported with where their groups went.
+    images, or a leakage check's near-duplicates were added as pairs). Classes
+    with fewer groups than splits are reported with where their groups went.
 
     Exit code 1 means findings: classes too small for every split, new images
     joining kept groups, or kept groups spanning two splits.

@@ -38,9 +38,9 @@ from curate.hashing import INVERSE_ORIENTATION
 from curate.manifest_table import standard_columns
 from curate.report import Finding, LeakReason, Report
 
-#: columns of :meth:`LeakageReport.to_frame`, one row per leak
 #: Evidence columns of a near-duplicate pair holding the code that turns image b onto image a.
 ORIENTATION_EVIDENCE = ("orientation", "crop_orientation")
+#: columns of :meth:`LeakageReport.to_frame`, one row per leak
 LEAK_COLUMNS = ["kind", "path_a", "split_a", "path_b", "split_b", "value", "distance", "evidence"]
 
 #: order in which kinds are listed

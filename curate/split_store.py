@@ -215,6 +215,7 @@ def split_workspace(
     catalog = split_catalog(ws)
     catalog, columns = _stratify_columns(catalog, stratify, ws, taxonomy)
     locked, keep_counts = (None, None)
+    kept = "previous split" if isinstance(keep, pd.Series) else keep
     if isinstance(keep, pd.Series):
         locked, keep_counts = keep, {"kept_from": "the previous split", "rows": int(len(keep))}
     elif keep is not None:
@@ -223,10 +224,9 @@ def split_workspace(
         _, effective = check_fractions(fractions, names)
         strange = sorted(set(locked) - set(effective))
         if strange:
-            raise ValueError(f"{keep}: split(s) {strange} are not among the split names {list(effective)}")
+            raise ValueError(f"{kept}: split(s) {strange} are not among the split names {list(effective)}")
     assignment = propose_split(catalog, fractions=fractions, names=names, stratify=columns,
                                keep=locked, random_state=random_state)
-    kept = "previous split" if isinstance(keep, pd.Series) else keep
     parameters = dict(assignment.parameters, keep=None if kept is None else str(kept),
                       keep_rows=keep_counts, group_parameters=stored_group_options(ws),
                       images=len(assignment.splits),
