@@ -760,6 +760,8 @@ def pairs_command(workspace, radius, out_path, workers, max_rows, quiet) -> int:
                f"{int(counts.get('possible', 0))} possible; {conflicts} with conflicting labels/patients")
     click.echo(f"crop check: {found.attrs['crop_checked']} pairs looked at, {found.attrs['crop_cached']} of them "
                "answered by an earlier run")
+    if found.attrs.get("pairs_read_back"):
+        click.echo("radius search and scoring: read back (same contents, codes and settings as an earlier run)")
     if max_rows and len(pairs):
         click.echo(pairs[["path_a", "path_b", "verdict", "score", "conflict"]].head(max_rows).to_string(index=False))
     return EXIT_FINDINGS if counts.get("exact", 0) or counts.get("near", 0) else EXIT_OK

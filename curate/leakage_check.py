@@ -143,7 +143,7 @@ def check_leakage(
     parameters = {"root": str(base), "near_duplicates": bool(near_duplicates)}
     if near_duplicates:
         parameters.update(radius=pairs.attrs["radius"], verdicts=list(NEAR_VERDICTS),
-                          cache=pairs.attrs["cache"])
+                          cache=pairs.attrs["cache"], scored_pairs_read_back=pairs.attrs["pairs_read_back"])
     return find_leaks(
         table,
         pairs=pairs,
@@ -182,7 +182,8 @@ def near_duplicate_pairs(
     """
     from curate.crop_files import upgrade_crop_pairs
     from curate.hash_files import hash_files
-    from curate.near_duplicates import DEFAULT_RADIUS, score_pairs
+    from curate.content_pair_store import score_pairs_kept
+    from curate.near_duplicates import DEFAULT_RADIUS
     from curate.report import LeakReason
     from curate.store import Workspace
 
@@ -206,7 +207,8 @@ def near_duplicate_pairs(
     hashed = readable[readable["sha256"].isin(set(hashes["sha256"]))].reset_index(drop=True)
     catalog = pd.DataFrame({"image_id": range(len(hashed)), "sha256": hashed["sha256"]})
     codes = hashes.drop(columns=["path"]).drop_duplicates("sha256")
-    scored = score_pairs(catalog, codes, radius=radius, workers=workers)
+    scored = score_pairs_kept(catalog, codes, radius=radius, workers=workers, cache=ws)
+    read_back = scored.attrs["pairs_read_back"]
     # second stage: confirmed crops become near (the same check as curate.pair_store uses), on
     # the pairs that could leak: two images in different splits (a pair inside one split is no leak)
     cross = np.ones(len(scored), bool)
@@ -225,5 +227,6 @@ def near_duplicate_pairs(
     )
     pairs = by_path[by_path["verdict"].isin(NEAR_VERDICTS)].reset_index(drop=True)
     review = by_path[by_path["verdict"] == "possible"].reset_index(drop=True)
-    pairs.attrs.update(radius=radius, cache=None if ws is None else str(ws.path))
+    pairs.attrs.update(radius=radius, cache=None if ws is None else str(ws.path),
+                       pairs_read_back=read_back)
     return pairs, review, unhashable

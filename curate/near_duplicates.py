@@ -496,9 +496,38 @@ def _exact_pairs(catalog: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame({"ia": ids[i], "ib": ids[j]})
 
 
+def content_hashes(hashes: pd.DataFrame) -> pd.DataFrame:
+    """The hash frame with one row per ``sha256``, sorted by it: the order
+    :func:`score_content_pairs` works in, so its answer depends on the contents alone."""
+    return hashes.drop_duplicates("sha256").sort_values("sha256", kind="stable").reset_index(drop=True)
+
+
+def score_content_pairs(hashes: pd.DataFrame, *, radius: int = DEFAULT_RADIUS,
+                        max_possible: int | None = MAX_POSSIBLE_PER_IMAGE,
+                        max_checks: int = MAX_CHECKS_PER_IMAGE, workers: int | None = None) -> pd.DataFrame:
+    """The first half of :func:`score_pairs`: scored candidate pairs of distinct contents.
+
+    Same parameters as :func:`score_pairs` (``hashes`` alone: images do not matter
+    here). Returns one row per pair of contents, ``sha_p < sha_q`` (SHA-256), with
+    the distance, ``orientation`` (the transform turning content p onto content q),
+    ``crop``, ``score`` and ``verdict`` columns; caps applied per content. The
+    answer depends on the set of contents and their codes only, not on their order,
+    so it can be kept by content (:mod:`curate.content_pair_store`).
+    """
+    h = content_hashes(hashes)
+    pq, wide = _candidate_hash_pairs(h, radius, workers) if len(h) >= 2 else (np.zeros((0, 2), np.int64),) * 2
+    if len(pq) or len(wide):
+        scored = _score_in_chunks(h, pq, wide, radius, max_possible, max_checks)
+    else:
+        scored = _score_hash_pairs(h, pq, radius, None)
+    sha = h["sha256"].to_numpy(object)
+    return scored.assign(sha_p=sha[scored["p"].to_numpy()], sha_q=sha[scored["q"].to_numpy()]).drop(
+        columns=["p", "q"]).reset_index(drop=True)
+
+
 def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DEFAULT_RADIUS,
                 max_possible: int | None = MAX_POSSIBLE_PER_IMAGE, max_checks: int = MAX_CHECKS_PER_IMAGE,
-                workers: int | None = None) -> pd.DataFrame:
+                workers: int | None = None, content_pairs: pd.DataFrame | None = None) -> pd.DataFrame:
     """Exact and near-duplicate pairs of catalog images, scored and judged.
 
     Parameters
@@ -526,6 +555,9 @@ def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DE
         without the cap; default :data:`MAX_CHECKS_PER_IMAGE`, 0 for none.
     workers : int, optional
         Threads for the radius search.
+    content_pairs : DataFrame, optional
+        :func:`score_content_pairs` of these hashes with these settings, computed
+        before (kept by content); computed here when None.
 
     Returns
     -------
@@ -556,7 +588,7 @@ def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DE
     2        3        4    near    label
     """
     _check_frames(catalog, hashes)
-    h = hashes.drop_duplicates("sha256").reset_index(drop=True)
+    h = content_hashes(hashes)
     members = catalog[["image_id", "sha256"]].merge(
         h[["sha256"]].reset_index().rename(columns={"index": "row"}), on="sha256"
     )
@@ -568,10 +600,15 @@ def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DE
         exact["d_dhash"] = exact["d_dhash"].astype("Int64")
         parts.append(exact)
     if len(h) >= 2:
-        pq, wide = _candidate_hash_pairs(h, radius, workers)
-        if len(pq) or len(wide):
-            parts.append(_expand_to_images(_score_in_chunks(h, pq, wide, radius, max_possible, max_checks),
-                                           members))
+        if content_pairs is None:
+            content_pairs = score_content_pairs(h, radius=radius, max_possible=max_possible,
+                                                max_checks=max_checks, workers=workers)
+        if len(content_pairs):
+            row = pd.Series(np.arange(len(h)), index=h["sha256"].to_numpy())
+            scored = content_pairs.assign(p=row.reindex(content_pairs["sha_p"]).to_numpy(),
+                                          q=row.reindex(content_pairs["sha_q"]).to_numpy())
+            scored = scored[scored["p"].notna() & scored["q"].notna()].drop(columns=["sha_p", "sha_q"])
+            parts.append(_expand_to_images(scored.astype({"p": np.int64, "q": np.int64}), members))
     if not parts:
         return _empty_pairs()
     x = pd.concat(parts, ignore_index=True)

@@ -13,8 +13,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from curate.content_pair_store import score_pairs_kept
 from curate.crop_files import upgrade_crop_pairs
-from curate.near_duplicates import DEFAULT_RADIUS, PAIR_COLUMNS, pair_conflicts, score_pairs
+from curate.near_duplicates import DEFAULT_RADIUS, PAIR_COLUMNS, pair_conflicts
 
 __all__ = ["find_pairs", "load_pairs", "add_found_pairs", "find_near_duplicates", "pairs_for_output",
            "IMAGE_SUFFIXES"]
@@ -57,7 +58,9 @@ def find_pairs(ws, *, radius: int = DEFAULT_RADIUS, workers: int | None = None,
         The stored pairs plus ``path_a``, ``path_b``, ``source_a``, ``source_b``,
         sorted by score (highest first). ``attrs["crop_checked"]``: pairs the
         crop check answered, ``attrs["crop_cached"]``: how many of those answers
-        were kept from an earlier run (table ``crop_checks``).
+        were kept from an earlier run (table ``crop_checks``),
+        ``attrs["pairs_read_back"]``: whether the radius search and scoring were
+        read back (:mod:`curate.content_pair_store`).
 
     Examples
     --------
@@ -72,7 +75,8 @@ def find_pairs(ws, *, radius: int = DEFAULT_RADIUS, workers: int | None = None,
     if len(catalog) and catalog["decodable"].astype(bool).any():
         hash_workspace(ws, workers=workers, progress=progress)
     hashes = load_hashes(ws)
-    pairs = score_pairs(catalog, hashes, radius=radius, workers=workers)
+    pairs = score_pairs_kept(catalog, hashes, radius=radius, workers=workers, cache=ws)
+    read_back = pairs.attrs["pairs_read_back"]
     pairs = upgrade_crop_pairs(pairs, dict(zip(catalog["image_id"], catalog["path"])), workers=workers,
                                progress=progress, digests=dict(zip(catalog["image_id"], catalog["sha256"])),
                                cache=ws)
@@ -83,7 +87,8 @@ def find_pairs(ws, *, radius: int = DEFAULT_RADIUS, workers: int | None = None,
             f"INSERT INTO pairs({', '.join(PAIR_COLUMNS)}) VALUES ({', '.join('?' * len(PAIR_COLUMNS))})", rows
         )
     out = _with_paths(pairs, catalog)
-    out.attrs.update(crop_checked=pairs.attrs.get("crop_checked", 0), crop_cached=pairs.attrs.get("crop_cached", 0))
+    out.attrs.update(crop_checked=pairs.attrs.get("crop_checked", 0), crop_cached=pairs.attrs.get("crop_cached", 0),
+                     pairs_read_back=read_back)
     return out
 
 
@@ -227,9 +232,9 @@ def find_near_duplicates(paths_or_dataframe, *, radius: int = DEFAULT_RADIUS, wo
     workers : int, optional
         Processes for hashing, threads for the search.
     cache : Workspace or path, optional
-        A workspace whose ``hashes`` and ``crop_checks`` tables serve as caches of
-        the hashes and of the crop check's answers (created if a path to a missing
-        folder is given).
+        A workspace whose ``hashes`` and ``crop_checks`` tables and
+        ``content_pairs`` folder serve as caches of the hashes, the crop check's
+        answers and the scored pairs (created if a path to a missing folder is given).
     progress : bool
         Show a progress bar while hashing.
 
@@ -267,7 +272,7 @@ def find_near_duplicates(paths_or_dataframe, *, radius: int = DEFAULT_RADIUS, wo
     by_path = hashes.drop_duplicates("path").set_index("path")["sha256"]
     catalog = table.assign(image_id=np.arange(len(table), dtype=np.int64),
                            sha256=by_path.reindex(table["path"]).to_numpy())
-    pairs = score_pairs(catalog, hashes.drop(columns=["path"]), radius=radius, workers=workers)
+    pairs = score_pairs_kept(catalog, hashes.drop(columns=["path"]), radius=radius, workers=workers, cache=cache)
     pairs = upgrade_crop_pairs(pairs, dict(zip(catalog["image_id"], catalog["path"])), workers=workers,
                                progress=progress, digests=dict(zip(catalog["image_id"], catalog["sha256"])),
                                cache=cache)

@@ -156,6 +156,7 @@ def find_duplicate_pairs(ctx: PipelineContext) -> dict:
         "conflicts": _counts(conflicts) if len(conflicts) else {},
         "crop_checks": pairs.attrs.get("crop_checked", 0),
         "crop_checks_kept_from_earlier_runs": pairs.attrs.get("crop_cached", 0),
+        "scored_pairs_read_back": "yes" if pairs.attrs.get("pairs_read_back") else "no",
     }
 
 
@@ -228,12 +229,13 @@ def check_split_leakage(ctx: PipelineContext) -> dict:
     from curate.pair_store import add_found_pairs
     from curate.split_store import mend_split
 
-    joined = moved = 0
+    joined = moved = read_back = 0
     for round_number in range(1, CHECK_ROUNDS + 1):
         table = workspace_split_table(ctx.workspace)
         table = table[["path", "split", "patient_id", "lesion_id", "sha256", "source"]]
         report = check_leakage(table, root="/", cache=ctx.workspace.path,
                                patient_scope="source", lesion_scope="source", progress=ctx.progress)
+        read_back += bool(report.parameters.get("scored_pairs_read_back"))
         kinds = set(report.counts())
         if report.ok or kinds != {"near_duplicate"} or round_number == CHECK_ROUNDS:
             break
@@ -244,7 +246,8 @@ def check_split_leakage(ctx: PipelineContext) -> dict:
                  f"step had not joined; joined them and moved {changed} images")
     ctx.leak_free = report.ok
     return {"images": report.n_images, "leaks": report.counts(), "checks": round_number,
-            "pairs_joined_from_checks": joined, "images_moved": moved}
+            "checks_reading_scored_pairs_back": read_back, "pairs_joined_from_checks": joined,
+            "images_moved": moved}
 
 
 def freeze_demo_split(ctx: PipelineContext) -> dict:

@@ -80,6 +80,9 @@ def test_the_check_joins_what_it_found_and_the_last_check_is_clean(mended):
     assert check["pairs_joined_from_checks"] >= len(apart), check
     assert check["leaks"] == {}, check
     assert steps["freeze"]["frozen"] == "yes"
+    # every check scored the same contents as the pairs step: its answer was read back
+    assert steps["pairs"]["scored_pairs_read_back"] == "no"
+    assert check["checks_reading_scored_pairs_back"] == 2, check
     ws = Workspace.open(summary["workspace"])
     verdict = ws.read_sql("SELECT image_a, image_b, verdict FROM pairs").set_index(["image_a", "image_b"])["verdict"]
     split = ws.read_sql("SELECT image_id, split FROM splits").set_index("image_id")["split"]
