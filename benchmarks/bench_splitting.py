@@ -131,6 +131,7 @@ def measure(fold, y, groups, k):
     sizes = np.bincount(fold, minlength=k) / len(fold)
     return {
         "worst": float(dev[eligible].max()), "mean": float(dev[eligible].mean()),
+        "worst_bound": float(bound[eligible].max()),
         "worst_all": float(dev.max()), "worst_excess": float(excess.max()),
         "mean_excess": float(excess.mean()), "above_bound": int((excess > 1e-9).sum()),
         "eligible": int(eligible.sum()), "classes": len(classes),
@@ -163,6 +164,10 @@ def run(name, y, groups, k, random_state):
     leak_free = a["leaking_groups"] == 0 and b["leaking_groups"] == 0
     ok = a["worst"] <= 0.5 * b["worst"] and leak_free
     print(f"target (worst per-class deviation <= 0.5 x sklearn, zero leakage): {'met' if ok else 'NOT met'}")
+    floor = a["worst_bound"]
+    print(f"no splitter can make the worst per-class deviation less than {floor:.4f} (the largest "
+          f"lower bound of a class); half of sklearn's is {0.5 * b['worst']:.4f}: the target is "
+          f"{'within reach' if floor <= 0.5 * b['worst'] else 'out of reach for any splitter'}")
     print(f"same on the excess over each class's bound: "
           f"{'met' if a['worst_excess'] <= 0.5 * b['worst_excess'] and leak_free else 'NOT met'}")
     return ok, t_ours, c_ours
