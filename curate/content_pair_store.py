@@ -79,7 +79,8 @@ def content_fingerprint(hashes: pd.DataFrame, settings: dict) -> str:
 
 def cached_content_pairs(ws, hashes: pd.DataFrame, *, radius: int = DEFAULT_RADIUS,
                          max_possible: int | None = MAX_POSSIBLE_PER_IMAGE,
-                         max_checks: int = MAX_CHECKS_PER_IMAGE, workers: int | None = None) -> pd.DataFrame:
+                         max_checks: int = MAX_CHECKS_PER_IMAGE, workers: int | None = None,
+                         progress: bool = False) -> pd.DataFrame:
     """:func:`curate.near_duplicates.score_content_pairs`, read back from the workspace when
     it was asked before with the same contents, codes and settings.
 
@@ -87,9 +88,9 @@ def cached_content_pairs(ws, hashes: pd.DataFrame, *, radius: int = DEFAULT_RADI
     ----------
     ws : Workspace
         Where the answers are kept (``WS/content_pairs/``).
-    hashes, radius, max_possible, max_checks, workers
+    hashes, radius, max_possible, max_checks, workers, progress
         As for :func:`~curate.near_duplicates.score_content_pairs` (``workers``
-        does not change the answer).
+        and ``progress`` do not change the answer).
 
     Returns
     -------
@@ -110,7 +111,7 @@ def cached_content_pairs(ws, hashes: pd.DataFrame, *, radius: int = DEFAULT_RADI
             out.attrs["read_back"] = True
             return out
     out = score_content_pairs(hashes, radius=radius, max_possible=max_possible, max_checks=max_checks,
-                              workers=workers)
+                              workers=workers, progress=progress)
     folder.mkdir(parents=True, exist_ok=True)
     temporary = folder / f".{key}.{os.getpid()}.tmp"
     out.to_parquet(temporary, index=False)
@@ -123,7 +124,7 @@ def cached_content_pairs(ws, hashes: pd.DataFrame, *, radius: int = DEFAULT_RADI
 
 
 def score_pairs_kept(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DEFAULT_RADIUS,
-                     workers: int | None = None, cache=None) -> pd.DataFrame:
+                     workers: int | None = None, cache=None, progress: bool = False) -> pd.DataFrame:
     """:func:`curate.near_duplicates.score_pairs` with its content pairs kept in ``cache``
     (a Workspace; None computes them without keeping). ``attrs["pairs_read_back"]`` says
     whether they were read back."""
@@ -131,7 +132,8 @@ def score_pairs_kept(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int
 
     content = None
     if cache is not None:
-        content = cached_content_pairs(cache, hashes, radius=radius, workers=workers)
-    pairs = score_pairs(catalog, hashes, radius=radius, workers=workers, content_pairs=content)
+        content = cached_content_pairs(cache, hashes, radius=radius, workers=workers, progress=progress)
+    pairs = score_pairs(catalog, hashes, radius=radius, workers=workers, content_pairs=content,
+                        progress=progress)
     pairs.attrs["pairs_read_back"] = bool(content is not None and content.attrs.get("read_back"))
     return pairs

@@ -207,7 +207,7 @@ def near_duplicate_pairs(
     hashed = readable[readable["sha256"].isin(set(hashes["sha256"]))].reset_index(drop=True)
     catalog = pd.DataFrame({"image_id": range(len(hashed)), "sha256": hashed["sha256"]})
     codes = hashes.drop(columns=["path"]).drop_duplicates("sha256")
-    scored = score_pairs_kept(catalog, codes, radius=radius, workers=workers, cache=ws)
+    scored = score_pairs_kept(catalog, codes, radius=radius, workers=workers, cache=ws, progress=progress)
     read_back = scored.attrs["pairs_read_back"]
     # second stage: confirmed crops become near (the same check as curate.pair_store uses), on
     # the pairs that could leak: two images in different splits (a pair inside one split is no leak)

@@ -233,10 +233,19 @@ def _pair_keys(a: np.ndarray, b: np.ndarray, n: int) -> np.ndarray:
     return np.unique(np.minimum(a[keep], b[keep]) * n + np.maximum(a[keep], b[keep]))
 
 
-def _candidate_hash_pairs(h: pd.DataFrame, radius: int, workers) -> tuple[np.ndarray, np.ndarray]:
+def _bar(total: int, desc: str, progress: bool, unit: str = "step"):
+    from tqdm.auto import tqdm
+
+    return tqdm(total=total, desc=desc, unit=unit, disable=not progress, leave=False)
+
+
+def _candidate_hash_pairs(h: pd.DataFrame, radius: int, workers,
+                          progress: bool = False) -> tuple[np.ndarray, np.ndarray]:
     """Pairs (p < q) of hash rows within ``radius`` on any family / orientation / crop window,
     and the pairs found only by a crop window up to :data:`WINDOW_EXTRA_RADIUS` bits further."""
     n = len(h)
+    crops, crop_owner = _crop_table(h)
+    bar = _bar(len(CANDIDATE_FAMILIES) + 1 + (8 if crops.size else 0), "radius search", progress)
     # Only the difference and DCT hashes generate candidates. This loses no pair that
     # scoring keeps: a kept pair has its DCT hash within the radius under some alignment
     # (found by the DCT, rotation and crop queries below), or 3 of the 4 structural families
@@ -247,11 +256,12 @@ def _candidate_hash_pairs(h: pd.DataFrame, radius: int, workers) -> tuple[np.nda
     for family in CANDIDATE_FAMILIES:
         i, j, _ = radius_pairs(_codes(h, family), radius, workers=workers)
         found.append(_pair_keys(i, j, n))
+        bar.update()
     phash = _codes(h, "phash")
     turned = [_codes(h, f"phash_t{t}") for t in range(1, 8)]
     i, j, _ = radius_query(np.concatenate(turned), phash, radius, workers=workers)
     found.append(_pair_keys(i % n, j, n))
-    crops, crop_owner = _crop_table(h)
+    bar.update()
     wide = []
     if crops.size:
         # a crop window of one image against any rotation/flip of the other (crop + rotation).
@@ -263,6 +273,8 @@ def _candidate_hash_pairs(h: pd.DataFrame, radius: int, workers) -> tuple[np.nda
             near = d <= radius
             found.append(_pair_keys(crop_owner[j[near]], i[near], n))
             wide.append(_pair_keys(crop_owner[j[~near]], i[~near], n))
+            bar.update()
+    bar.close()
     key = np.unique(np.concatenate(found))
     wide = np.setdiff1d(np.unique(np.concatenate(wide)), key, assume_unique=True) if wide else key[:0]
     return tuple(np.stack([k // n, k % n], axis=1) for k in (key, wide))
@@ -445,7 +457,7 @@ def _best_possible(pairs: pd.DataFrame, limit: int | None, checks: int) -> pd.Da
 
 
 def _score_in_chunks(h: pd.DataFrame, pq: np.ndarray, wide: np.ndarray, radius: int, limit: int | None,
-                     checks: int) -> pd.DataFrame:
+                     checks: int, progress: bool = False) -> pd.DataFrame:
     """:func:`_best_possible` of :func:`_score_hash_pairs` over all of ``pq``, scored
     :data:`SCORE_CHUNK_PAIRS` at a time, and over the ``wide`` pairs (found only by a crop
     window beyond ``radius``) that may be worth the crop check.
@@ -461,8 +473,11 @@ def _score_in_chunks(h: pd.DataFrame, pq: np.ndarray, wide: np.ndarray, radius: 
     table = _crop_window_table(h)
     parts = []
     within = np.zeros(len(h), np.int64)  # per content: possible pairs within the radius
+    bar = _bar(0, "scoring", progress, unit="pair")
 
     def score(pairs):
+        bar.total += len(pairs)
+        bar.refresh()
         for start in range(0, len(pairs), SCORE_CHUNK_PAIRS):
             chunk = _score_hash_pairs(h, pairs[start:start + SCORE_CHUNK_PAIRS], radius, table)
             close = chunk[(chunk["verdict"].to_numpy() == "possible")
@@ -470,11 +485,13 @@ def _score_in_chunks(h: pd.DataFrame, pq: np.ndarray, wide: np.ndarray, radius: 
             np.add.at(within, close["p"].to_numpy(), 1)
             np.add.at(within, close["q"].to_numpy(), 1)
             parts.append(_best_possible(chunk, limit, checks))
+            bar.update(len(chunk))
 
     score(pq)
     if len(wide) and (limit is None or checks):
         few = within < checks
         score(wide if limit is None else wide[few[wide[:, 0]] | few[wide[:, 1]]])
+    bar.close()
     if len(parts) == 1:
         return parts[0]
     return _best_possible(pd.concat(parts, ignore_index=True), limit, checks)
@@ -504,20 +521,22 @@ def content_hashes(hashes: pd.DataFrame) -> pd.DataFrame:
 
 def score_content_pairs(hashes: pd.DataFrame, *, radius: int = DEFAULT_RADIUS,
                         max_possible: int | None = MAX_POSSIBLE_PER_IMAGE,
-                        max_checks: int = MAX_CHECKS_PER_IMAGE, workers: int | None = None) -> pd.DataFrame:
+                        max_checks: int = MAX_CHECKS_PER_IMAGE, workers: int | None = None,
+                        progress: bool = False) -> pd.DataFrame:
     """The first half of :func:`score_pairs`: scored candidate pairs of distinct contents.
 
     Same parameters as :func:`score_pairs` (``hashes`` alone: images do not matter
-    here). Returns one row per pair of contents, ``sha_p < sha_q`` (SHA-256), with
+    here); ``progress`` shows bars (tqdm) over the radius search and the scoring. Returns one row per pair of contents, ``sha_p < sha_q`` (SHA-256), with
     the distance, ``orientation`` (the transform turning content p onto content q),
     ``crop``, ``score`` and ``verdict`` columns; caps applied per content. The
     answer depends on the set of contents and their codes only, not on their order,
     so it can be kept by content (:mod:`curate.content_pair_store`).
     """
     h = content_hashes(hashes)
-    pq, wide = _candidate_hash_pairs(h, radius, workers) if len(h) >= 2 else (np.zeros((0, 2), np.int64),) * 2
+    pq, wide = (_candidate_hash_pairs(h, radius, workers, progress) if len(h) >= 2
+                else (np.zeros((0, 2), np.int64),) * 2)
     if len(pq) or len(wide):
-        scored = _score_in_chunks(h, pq, wide, radius, max_possible, max_checks)
+        scored = _score_in_chunks(h, pq, wide, radius, max_possible, max_checks, progress)
     else:
         scored = _score_hash_pairs(h, pq, radius, None)
     sha = h["sha256"].to_numpy(object)
@@ -527,7 +546,8 @@ def score_content_pairs(hashes: pd.DataFrame, *, radius: int = DEFAULT_RADIUS,
 
 def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DEFAULT_RADIUS,
                 max_possible: int | None = MAX_POSSIBLE_PER_IMAGE, max_checks: int = MAX_CHECKS_PER_IMAGE,
-                workers: int | None = None, content_pairs: pd.DataFrame | None = None) -> pd.DataFrame:
+                workers: int | None = None, content_pairs: pd.DataFrame | None = None,
+                progress: bool = False) -> pd.DataFrame:
     """Exact and near-duplicate pairs of catalog images, scored and judged.
 
     Parameters
@@ -558,6 +578,8 @@ def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DE
     content_pairs : DataFrame, optional
         :func:`score_content_pairs` of these hashes with these settings, computed
         before (kept by content); computed here when None.
+    progress : bool
+        Progress bars (tqdm) over the radius search and the scoring.
 
     Returns
     -------
@@ -602,7 +624,7 @@ def score_pairs(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int = DE
     if len(h) >= 2:
         if content_pairs is None:
             content_pairs = score_content_pairs(h, radius=radius, max_possible=max_possible,
-                                                max_checks=max_checks, workers=workers)
+                                                max_checks=max_checks, workers=workers, progress=progress)
         if len(content_pairs):
             row = pd.Series(np.arange(len(h)), index=h["sha256"].to_numpy())
             scored = content_pairs.assign(p=row.reindex(content_pairs["sha_p"]).to_numpy(),

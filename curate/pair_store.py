@@ -75,7 +75,7 @@ def find_pairs(ws, *, radius: int = DEFAULT_RADIUS, workers: int | None = None,
     if len(catalog) and catalog["decodable"].astype(bool).any():
         hash_workspace(ws, workers=workers, progress=progress)
     hashes = load_hashes(ws)
-    pairs = score_pairs_kept(catalog, hashes, radius=radius, workers=workers, cache=ws)
+    pairs = score_pairs_kept(catalog, hashes, radius=radius, workers=workers, cache=ws, progress=progress)
     read_back = pairs.attrs["pairs_read_back"]
     pairs = upgrade_crop_pairs(pairs, dict(zip(catalog["image_id"], catalog["path"])), workers=workers,
                                progress=progress, digests=dict(zip(catalog["image_id"], catalog["sha256"])),
@@ -272,7 +272,8 @@ def find_near_duplicates(paths_or_dataframe, *, radius: int = DEFAULT_RADIUS, wo
     by_path = hashes.drop_duplicates("path").set_index("path")["sha256"]
     catalog = table.assign(image_id=np.arange(len(table), dtype=np.int64),
                            sha256=by_path.reindex(table["path"]).to_numpy())
-    pairs = score_pairs_kept(catalog, hashes.drop(columns=["path"]), radius=radius, workers=workers, cache=cache)
+    pairs = score_pairs_kept(catalog, hashes.drop(columns=["path"]), radius=radius, workers=workers, cache=cache,
+                             progress=progress)
     pairs = upgrade_crop_pairs(pairs, dict(zip(catalog["image_id"], catalog["path"])), workers=workers,
                                progress=progress, digests=dict(zip(catalog["image_id"], catalog["sha256"])),
                                cache=cache)
