@@ -77,6 +77,15 @@ def package_versions() -> dict[str, str]:
     return out
 
 
+def manifest_name_taken(ws: Workspace, name: str) -> bool:
+    """True when a manifest of that name was frozen in the workspace (recorded in table
+    ``manifests``) or any of its files exists; such a name is never written again."""
+    folder = ws.path / MANIFEST_FOLDER
+    if any(p.exists() for p in manifest_files(folder, name).values()):
+        return True
+    return len(ws.read_sql("SELECT name FROM manifests WHERE name = ?", (name,))) > 0
+
+
 def workspace_split_table(ws: Workspace, *, everything: bool = False) -> pd.DataFrame:
     """The images a manifest of the workspace lists, with split, group, node and skin-tone bin.
 
@@ -193,9 +202,7 @@ def freeze_split(
         raise ValueError("a salt was given without pseudonymise=True; it would do nothing")
     folder = ws.path / MANIFEST_FOLDER
     Manifest(pd.DataFrame(columns=["path", "sha256", "split"]), name=name)  # checks the name
-    taken = [p for p in manifest_files(folder, name).values() if p.exists()]
-    recorded = ws.read_sql("SELECT name FROM manifests WHERE name = ?", (name,))
-    if taken or len(recorded):
+    if manifest_name_taken(ws, name):
         raise ManifestError(f"manifest {name!r} already exists in {folder}; choose another name")
 
     everything = workspace_split_table(ws, everything=True)

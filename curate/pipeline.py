@@ -254,14 +254,17 @@ def freeze_demo_split(ctx: PipelineContext) -> dict:
     """Freeze the split as a manifest (refused while the split leaks: by the workspace's own
     evidence, or by the independent check of the step before)."""
     from curate.errors import LeakageError
-    from curate.freeze import freeze_split
+    from curate.freeze import freeze_split, manifest_name_taken
 
     if ctx.leak_free is False:
         leaks = ctx.results.get("check", {}).get("leaks", {})
         return {"frozen": "no, the independent leakage check found leaks",
                 "reason": ", ".join(f"{n} {kind}" for kind, n in leaks.items()) or "see the check step"}
+    # a manifest name is never reused: a second run over the same folder freezes demo-2, ...
+    name = next(n for n in ("demo", *(f"demo-{k}" for k in range(2, 10_000)))
+                if not manifest_name_taken(ctx.workspace, n))
     try:
-        frozen = freeze_split(ctx.workspace, "demo", progress=ctx.progress, command="curate demo")
+        frozen = freeze_split(ctx.workspace, name, progress=ctx.progress, command="curate demo")
     except LeakageError as exc:
         return {"frozen": "no, the split leaks", "reason": str(exc).splitlines()[0]}
     return {"frozen": "yes", "files": ", ".join(str(p) for p in frozen.files.values())}

@@ -157,3 +157,16 @@ def test_freeze_is_refused_when_the_independent_check_found_leaks(ran):
     assert result["frozen"].startswith("no") and result["reason"] == "3 near_duplicate"
     after = sorted(p.name for p in (ws.path / "manifests").glob("*")) if (ws.path / "manifests").exists() else []
     assert after == manifests  # nothing written
+
+
+def test_a_second_freeze_of_the_demo_takes_the_next_free_name(ran):
+    out, summary, _, _ = ran
+    from curate.pipeline import PipelineContext, freeze_demo_split, read_sources
+    from curate.store import Workspace
+
+    assert summary["steps"]["freeze"]["frozen"] == "yes"
+    ws = Workspace.open(summary["workspace"])
+    ctx = PipelineContext(out, ws, read_sources(out), False, lambda line: None, leak_free=True)
+    result = freeze_demo_split(ctx)
+    assert result["frozen"] == "yes", result
+    assert "demo-2.csv" in result["files"] and (ws.path / "manifests" / "demo.csv").is_file()
