@@ -30,13 +30,14 @@ from curate.near_duplicates import (
     MAX_POSSIBLE_PER_IMAGE,
     content_hashes,
     score_content_pairs,
+    score_pairs,
 )
 
 __all__ = ["cached_content_pairs", "score_pairs_kept", "content_fingerprint", "FOLDER", "KEEP_FILES"]
 
 #: Folder of the workspace holding the answers.
 FOLDER = "content_pairs"
-#: How many answers are kept (newest by use); at 100,000 images one is about 30 MB.
+#: How many answers are kept (newest by use); at 100,000 images one is about 44 MB.
 KEEP_FILES = 4
 #: Columns of a hash frame that are not codes.
 NOT_CODES = ("sha256", "path", "crop_hashes")
@@ -128,8 +129,6 @@ def score_pairs_kept(catalog: pd.DataFrame, hashes: pd.DataFrame, *, radius: int
     """:func:`curate.near_duplicates.score_pairs` with its content pairs kept in ``cache``
     (a Workspace; None computes them without keeping). ``attrs["pairs_read_back"]`` says
     whether they were read back."""
-    from curate.near_duplicates import score_pairs
-
     content = None
     if cache is not None:
         content = cached_content_pairs(cache, hashes, radius=radius, workers=workers, progress=progress)

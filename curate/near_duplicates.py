@@ -526,8 +526,9 @@ def score_content_pairs(hashes: pd.DataFrame, *, radius: int = DEFAULT_RADIUS,
     """The first half of :func:`score_pairs`: scored candidate pairs of distinct contents.
 
     Same parameters as :func:`score_pairs` (``hashes`` alone: images do not matter
-    here); ``progress`` shows bars (tqdm) over the radius search and the scoring. Returns one row per pair of contents, ``sha_p < sha_q`` (SHA-256), with
-    the distance, ``orientation`` (the transform turning content p onto content q),
+    here); ``progress`` shows bars (tqdm) over the radius search and the scoring.
+    Returns one row per pair of contents, ``sha_p < sha_q`` (SHA-256), with the
+    distance, ``orientation`` (the transform turning content p onto content q),
     ``crop``, ``score`` and ``verdict`` columns; caps applied per content. The
     answer depends on the set of contents and their codes only, not on their order,
     so it can be kept by content (:mod:`curate.content_pair_store`).
