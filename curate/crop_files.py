@@ -113,7 +113,8 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
         (``crop_checked`` 0/1; NCC, scale, orientation and agreeing hash families of
         the best alignment for checked pairs). ``attrs["crop_checked"]`` holds the
         number of pairs checked (read back from the cache included) and
-        ``attrs["crop_cached"]`` how many of them were read back.
+        ``attrs["crop_cached"]`` how many of them were read back. Pairs of the same two
+        contents (images sharing a digest) are checked once.
 
     Examples
     --------
@@ -149,14 +150,22 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
             evidence[k] = m[1:]
 
     a_ids, b_ids = out["image_a"].to_numpy()[todo], out["image_b"].to_numpy()[todo]
-    keys = None
+    keys, repeats = None, []
     if cache is not None and digests is not None:
         keys = [(digests.get(a), digests.get(b)) for a, b in zip(a_ids, b_ids)]
         known = _cached(cache, keys)
         for k, key in zip(todo, keys):
             take(k, known.get(key))
-        out.attrs["crop_cached"] = len(known)
         fresh = np.array([key not in known for key in keys], bool)
+        out.attrs["crop_cached"] = int((~fresh).sum())
+        # copies of one content pair (images sharing a digest) are checked once
+        first = {}
+        for i, key in enumerate(keys):
+            if fresh[i] and None not in key:
+                j = first.setdefault(key, i)
+                if j != i:
+                    repeats.append((todo[i], todo[j]))
+                    fresh[i] = False
         todo, a_ids, b_ids = todo[fresh], a_ids[fresh], b_ids[fresh]
         keys = [key for key, f in zip(keys, fresh) if f]
     # pairs sharing an image go to the same chunk where possible, so it is decoded once per chunk
@@ -170,6 +179,9 @@ def upgrade_crop_pairs(pairs: pd.DataFrame, paths: Mapping, *, max_d_crop: int =
             take(k, m)
             if m is not None and None not in key_of.get(k, (None,)):
                 answers.append((*key_of[k], m))
+    for k, source in repeats:
+        if checked[source]:
+            checked[k], confirmed[k], evidence[k] = True, confirmed[source], evidence[source]
     if answers:
         from curate.crop_check_store import store_checks
 

@@ -272,6 +272,28 @@ def test_cached_crop_checks_are_read_back_not_checked_again(tmp_path, monkeypatc
         upgrade_crop_pairs(pairs, paths, workers=1, progress=False, digests=digests, cache=ws)
 
 
+def test_copies_of_one_content_pair_are_checked_once(tmp_path, monkeypatch):
+    import shutil
+
+    import curate.crop_files as crop_files
+    from curate.store import Workspace
+
+    paths, digests = _turned_crop_files(tmp_path)
+    shutil.copy(paths[1], tmp_path / "c_copy.png")  # a byte copy of the crop: the same digest
+    paths[3], digests[3] = str(tmp_path / "c_copy.png"), digests[1]
+    pairs = pd.DataFrame({"image_a": [0, 0, 0], "image_b": [1, 3, 2]}).assign(
+        verdict="possible", d_crop=6, crop=0, orientation=0)
+    seen = []
+    check_chunk = crop_files.check_chunk
+    monkeypatch.setattr(crop_files, "check_chunk", lambda items: seen.extend(items) or check_chunk(items))
+    out = upgrade_crop_pairs(pairs, paths, workers=1, progress=False, digests=digests,
+                             cache=Workspace.create(tmp_path / "ws"))
+    assert sorted(k for k, _, _ in seen) == [0, 2]  # pair 1 is pair 0 again, by content
+    # reference: the same pairs each checked, without digests
+    pd.testing.assert_frame_equal(out, upgrade_crop_pairs(pairs, paths, workers=1, progress=False))
+    assert out["verdict"].tolist() == ["near", "near", "possible"]
+
+
 def test_find_near_duplicates_calls_a_crop_near(tmp_path):
     from curate.pair_store import find_near_duplicates
 
