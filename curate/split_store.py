@@ -202,7 +202,8 @@ def split_workspace(
     """Propose a split of the workspace's present images and store it in table ``splits``.
 
     Groups are rebuilt first (with ``group_options``, or else the options of the
-    last :func:`build_groups` run), so new pairs and decisions count. ``stratify`` takes catalog columns (``source``, ``modality`` ...),
+    last :func:`build_groups` run), so new pairs and decisions count. ``stratify``
+    takes catalog columns (``source``, ``modality`` ...),
     ``node``, ``training_class``, ``ita_bin``, and ``node:DEPTH`` for the taxonomy
     ancestor at that depth. ``keep`` is a manifest whose assignments must not move, or
     a Series of split names by ``image_id`` (as :func:`mend_split` passes).
@@ -212,6 +213,12 @@ def split_workspace(
     # groups are always rebuilt, with the options of the last `curate groups` run, so
     # pairs and review decisions added since then are honoured
     build_groups(ws, **(group_options if group_options is not None else stored_group_options(ws)))
+    return _split_grouped(ws, fractions=fractions, names=names, stratify=stratify, random_state=random_state,
+                          keep=keep, taxonomy=taxonomy)
+
+
+def _split_grouped(ws: Workspace, *, fractions, names, stratify, random_state, keep, taxonomy) -> SplitAssignment:
+    """:func:`split_workspace` once the groups are built: split, store, return."""
     catalog = split_catalog(ws)
     catalog, columns = _stratify_columns(catalog, stratify, ws, taxonomy)
     locked, keep_counts = (None, None)
@@ -274,8 +281,8 @@ def mend_split(ws: Workspace, *, taxonomy=None) -> tuple[SplitAssignment, int]:
     current = current[current.index.isin(groups.index)]
     spans = current.groupby(groups.reindex(current.index)).nunique()
     torn = groups.reindex(current.index).isin(spans.index[spans > 1])
-    assignment = split_workspace(ws, fractions=stored["fractions"], names=stored["names"],
-                                 stratify=stored["stratify"], random_state=stored["random_state"],
-                                 keep=current[~torn.to_numpy()], taxonomy=taxonomy)
+    assignment = _split_grouped(ws, fractions=stored["fractions"], names=stored["names"],
+                                stratify=stored["stratify"], random_state=stored["random_state"],
+                                keep=current[~torn.to_numpy()], taxonomy=taxonomy)
     moved = assignment.splits.reindex(current.index) != current
     return assignment, int(moved.sum())
