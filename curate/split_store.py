@@ -221,10 +221,9 @@ def _split_grouped(ws: Workspace, *, fractions, names, stratify, random_state, k
     """:func:`split_workspace` once the groups are built: split, store, return."""
     catalog = split_catalog(ws)
     catalog, columns = _stratify_columns(catalog, stratify, ws, taxonomy)
-    locked, keep_counts = (None, None)
-    kept = "previous split" if isinstance(keep, pd.Series) else keep
+    locked, keep_counts, kept = None, None, keep
     if isinstance(keep, pd.Series):
-        locked, keep_counts = keep, {"kept_from": "the previous split", "rows": int(len(keep))}
+        locked, keep_counts, kept = keep, {"kept_from": "the previous split", "rows": int(len(keep))}, "previous split"
     elif keep is not None:
         locked, keep_counts = read_keep_manifest(keep, catalog)
     if keep is not None:
@@ -276,8 +275,7 @@ def mend_split(ws: Workspace, *, taxonomy=None) -> tuple[SplitAssignment, int]:
     if record is None or current.empty:
         raise ValueError(f"{ws.path}: no split to mend; propose one first (`curate split`)")
     stored = json.loads(record)
-    build_groups(ws, **stored_group_options(ws))
-    groups = ws.read_sql("SELECT image_id, group_id FROM groups").set_index("image_id")["group_id"]
+    groups = build_groups(ws, **stored_group_options(ws)).groups
     current = current[current.index.isin(groups.index)]
     spans = current.groupby(groups.reindex(current.index)).nunique()
     torn = groups.reindex(current.index).isin(spans.index[spans > 1])
